@@ -47,6 +47,9 @@ from cladewise.trees import FlatTree
 
 __all__ = [
     "MODELS",
+    "TREE_ARRAY_NAMES",
+    "tree_arrays",
+    "lengths_from_arrays",
     "transformed_lengths",
     "model_warnings",
     "check_model_name",
@@ -91,14 +94,55 @@ def model_warnings(tree: FlatTree, model: str, rtol: float = 1e-6) -> list[str]:
     return out
 
 
-def _backend(params: dict[str, Any]) -> ModuleType:
-    """numpy unless a parameter is a PyTensor variable."""
-    for v in params.values():
+def _backend(*values: Any) -> ModuleType:
+    """numpy unless a value is a PyTensor variable."""
+    for v in values:
         if type(v).__module__.startswith("pytensor"):
             import pytensor.tensor as pt
 
             return pt
     return np
+
+
+#: names of the per-tree arrays a transform needs (all data, never parameters)
+TREE_ARRAY_NAMES = ("length", "h_start", "h_end", "is_tip", "is_root", "height")
+
+
+def tree_arrays(tree: FlatTree) -> dict[str, np.ndarray]:
+    """The per-node arrays the transforms read, as plain numpy arrays.
+
+    Kept separate from the tree so a compiled model can receive another tree of the
+    same size as data (``pm.Data``) without recompiling.
+
+    Returns
+    -------
+    dict
+        ``length`` (branch lengths, last entry the root edge), ``h_start`` and
+        ``h_end`` (distance from the root to both ends of each branch), ``is_tip``
+        and ``is_root`` (0/1 floats), ``height`` (tallest root-to-tip distance, 0-d).
+    """
+    h_end = tree.heights()
+    parent = tree.parent.copy()
+    parent[-1] = tree.root
+    h_start = h_end[parent]
+    h_start[-1] = 0.0
+    is_tip = np.zeros(tree.n_nodes)
+    is_tip[: tree.n_tips] = 1.0
+    is_root = np.zeros(tree.n_nodes)
+    is_root[-1] = 1.0
+    height = np.asarray(h_end[: tree.n_tips].max() if tree.n_tips else 0.0)
+    return {"length": tree.length.copy(), "h_start": h_start, "h_end": h_end,
+            "is_tip": is_tip, "is_root": is_root, "height": height}
+
+
+def _check_params(model: str, params: dict[str, Any]) -> None:
+    missing = [p for p in MODELS[model] if p not in params]
+    extra = [p for p in params if p not in MODELS[model]]
+    if missing or extra:
+        raise InputError(
+            f"the {model!r} model takes parameters {MODELS[model] or '(none)'}; "
+            f"missing {missing}, unexpected {extra}"
+        )
 
 
 def transformed_lengths(
@@ -122,55 +166,51 @@ def transformed_lengths(
     ndarray or TensorVariable, shape (n_nodes,)
         New lengths; the last entry is the root edge.
     """
+    return lengths_from_arrays(tree_arrays(tree), model, ou_root=ou_root, **params)
+
+
+def lengths_from_arrays(
+    arrays: dict[str, Any], model: str, ou_root: str = "fixed", **params: Any
+) -> Any:
+    """:func:`transformed_lengths` on the arrays of :func:`tree_arrays`.
+
+    The arrays may be numpy arrays or PyTensor variables (for example ``pm.Data``).
+    """
     model = check_model_name(model)
-    missing = [p for p in MODELS[model] if p not in params]
-    extra = [p for p in params if p not in MODELS[model]]
-    if missing or extra:
-        raise InputError(
-            f"the {model!r} model takes parameters {MODELS[model] or '(none)'}; "
-            f"missing {missing}, unexpected {extra}"
-        )
-    xp = _backend(params)
-    length = tree.length
+    _check_params(model, params)
+    xp = _backend(*params.values(), *arrays.values())
+    length = arrays["length"]
     if model == "bm":
         return length if xp is np else xp.as_tensor_variable(length)
-
-    h_end = tree.heights()
-    parent = tree.parent.copy()
-    parent[-1] = tree.root
-    h_start = h_end[parent]
-    h_start[-1] = 0.0
-    n = tree.n_tips
-    is_tip = np.zeros(tree.n_nodes, dtype=bool)
-    is_tip[:n] = True
-    root_edge = np.zeros(tree.n_nodes)
-    root_edge[-1] = length[-1]
+    h_start, h_end = arrays["h_start"], arrays["h_end"]
+    is_tip, is_root = arrays["is_tip"], arrays["is_root"]
+    root_edge = is_root * length
     inner = length - root_edge  # branch lengths without the root edge
-    T = float(h_end[:n].max()) if n else 0.0
+    T = arrays["height"]
+    root_len = (is_root * length).sum()
 
     if model == "lambda":
         lam = params["lam"]
         # diag(C) = tip height + root edge is kept; everything shared scales by lam
-        tip_total = np.where(is_tip, h_end + length[-1], 0.0)
-        return xp.where(is_tip, lam * length + (1.0 - lam) * tip_total, lam * length)
+        tip_total = is_tip * (h_end + root_len)
+        return is_tip * (lam * length + (1.0 - lam) * tip_total) + (1.0 - is_tip) * lam * length
 
     if model == "kappa":
         kappa = params["kappa"]
-        safe = np.where(length > 0, length, 1.0)
-        return xp.where(length > 0, xp.exp(kappa * np.log(safe)), 0.0)
+        pos = length > 0
+        safe = xp.where(pos, length, 1.0)
+        return xp.where(pos, xp.exp(kappa * xp.log(safe)), 0.0)
 
     if model == "delta":
         delta = params["delta"]
-        if T <= 0:
-            raise InputError("the delta model needs a tree of positive height")
-        end = h_end / T
-        start = h_start / T
+        T_safe = xp.where(T > 0, T, 1.0)
 
-        def powh(u: np.ndarray) -> Any:
-            safe = np.where(u > 0, u, 1.0)
-            return xp.where(u > 0, xp.exp(delta * np.log(safe)), 0.0)
+        def powh(u: Any) -> Any:
+            pos = u > 0
+            safe = xp.where(pos, u, 1.0)
+            return xp.where(pos, xp.exp(delta * xp.log(safe)), 0.0)
 
-        return T * (powh(end) - powh(start)) + root_edge
+        return T * (powh(h_end / T_safe) - powh(h_start / T_safe)) + root_edge
 
     if model == "early_burst":
         r = params["rate_change"]
@@ -184,12 +224,10 @@ def transformed_lengths(
             raise InputError("ou_root must be 'fixed' or 'stationary'")
         two_a = 2.0 * alpha
         # tau(b) - tau(a) = exp(-2a(T-b)) (1 - exp(-2a(b-a))) / (2a): stable for big alpha
-        gap = np.maximum(T - h_end, 0.0)
+        gap = xp.maximum(T - h_end, 0.0)
         out = xp.exp(-two_a * gap) * (-xp.expm1(-two_a * inner)) / two_a + root_edge
         if ou_root == "stationary":
-            last = np.zeros(tree.n_nodes)
-            last[-1] = 1.0
-            out = out + last * xp.exp(-two_a * T) / two_a
+            out = out + is_root * xp.exp(-two_a * T) / two_a
         return out
 
     raise AssertionError(model)  # pragma: no cover

@@ -1,0 +1,212 @@
+"""Numpy entry points of the linear-time engine (validation happens here, once)."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from cladewise.engine import kernels
+from cladewise.errors import InputError
+
+__all__ = [
+    "loglik",
+    "loglik_and_grad",
+    "loo_conditionals",
+    "loo_logdensity",
+    "loo_logdensity_draws",
+    "ancestral_states",
+]
+
+
+def _check_tree(parent: np.ndarray, lengths: np.ndarray, n_tips: int) -> None:
+    n = parent.shape[0]
+    if parent.ndim != 1 or n < n_tips or n == 0:
+        raise InputError(
+            f"parent must be a 1-d array with one entry per node (at least the {n_tips} "
+            f"tips); got shape {parent.shape}. Pass FlatTree.parent."
+        )
+    if parent[-1] != -1:
+        raise InputError("the last node must be the root (parent -1); build the tree with FlatTree")
+    idx = np.arange(n - 1)
+    if np.any(parent[:-1] <= idx) or np.any(parent[:-1] >= n) or np.any(parent[:-1] < n_tips):
+        raise InputError(
+            "parent must list tips first and internal nodes in post-order "
+            "(parent[i] > i, tips never parents); build the tree with FlatTree"
+        )
+    if lengths.shape[-1] != n:
+        raise InputError(
+            f"lengths has {lengths.shape[-1]} entries per tree but the tree has {n} nodes"
+        )
+    if not np.all(np.isfinite(lengths)) or np.any(lengths < 0):
+        raise InputError("branch lengths must be finite and >= 0; fix or drop negative branches")
+
+
+def _check_cov(name: str, M: np.ndarray, k: int, semidefinite: bool) -> None:
+    if M.shape[-2:] != (k, k):
+        raise InputError(f"{name} must be {k} x {k} (one row per trait); got {M.shape}")
+    if not np.all(np.isfinite(M)):
+        raise InputError(f"{name} contains NaN or infinite values")
+    if not np.allclose(M, np.swapaxes(M, -1, -2), rtol=1e-10, atol=1e-12):
+        raise InputError(f"{name} must be symmetric")
+    ev = np.linalg.eigvalsh(0.5 * (M + np.swapaxes(M, -1, -2)))
+    scale = max(1.0, float(np.abs(ev).max()))
+    bad = np.any(ev < -1e-12 * scale) if semidefinite else np.any(ev <= 0.0)
+    if bad:
+        kind = "positive semidefinite" if semidefinite else "positive definite"
+        raise InputError(f"{name} must be {kind}")
+
+
+def _prepare(parent, lengths, y, observed, R, E, err_var, mu, draws: bool = False):
+    parent = np.ascontiguousarray(parent, dtype=np.int64)
+    y = np.array(y, dtype=np.float64, copy=True, ndmin=2)
+    if y.ndim != 2:
+        raise InputError(f"y must be (species x traits); got shape {y.shape}")
+    n_tips, k = y.shape
+    observed = np.ascontiguousarray(observed, dtype=bool)
+    if observed.shape != y.shape:
+        raise InputError(f"observed must have the shape of y {y.shape}; got {observed.shape}")
+    if not np.all(np.isfinite(y[observed])):
+        raise InputError("y has NaN or infinite values in cells marked observed; mark them missing")
+    y[~observed] = 0.0
+    lengths = np.ascontiguousarray(lengths, dtype=np.float64)
+    R = np.ascontiguousarray(R, dtype=np.float64)
+    E = np.ascontiguousarray(E, dtype=np.float64)
+    err_var = np.ascontiguousarray(err_var, dtype=np.float64)
+    mu = np.ascontiguousarray(mu, dtype=np.float64)
+    _check_tree(parent, lengths, n_tips)
+    _check_cov("R", R, k, semidefinite=False)
+    _check_cov("E", E, k, semidefinite=True)
+    if err_var.shape[-2:] != (n_tips, k):
+        raise InputError(f"err_var must have the shape of y {y.shape}; got {err_var.shape}")
+    if not np.all(np.isfinite(err_var)) or np.any(err_var < 0):
+        raise InputError("measurement-error variances must be finite and >= 0")
+    if mu.shape[-1:] != (k,) or not np.all(np.isfinite(mu)):
+        raise InputError(f"mu must hold {k} finite root means; got shape {mu.shape}")
+    if not draws:
+        if lengths.ndim != 1 or R.ndim != 2 or E.ndim != 2 or err_var.ndim != 2 or mu.ndim != 1:
+            raise InputError("lengths, R, E, err_var and mu must be single values, not draws")
+        _check_tips(parent, lengths, observed, E, err_var)
+    return parent, lengths, y, observed, R, E, err_var, mu
+
+
+def _check_tips(parent, lengths, observed, E, err_var) -> None:
+    n_tips = observed.shape[0]
+    bad = (lengths[:n_tips] == 0) & observed.any(axis=1)
+    for i in np.flatnonzero(bad):
+        o = observed[i]
+        S = E[np.ix_(o, o)] + np.diag(err_var[i, o])
+        if np.linalg.eigvalsh(S).min() <= 0:
+            raise InputError(
+                f"species {i} sits on a zero-length branch with no measurement error: its "
+                "observation would be a point mass. Give it a positive branch length or an "
+                "error variance."
+            )
+
+
+def loglik(parent, lengths, y, observed, R, E, err_var, mu) -> float:
+    """Log-likelihood of the observed cells, computed in O(N k^3).
+
+    Parameters
+    ----------
+    parent : (n_nodes,) int
+        FlatTree parent array.
+    lengths : (n_nodes,) float
+        Branch lengths (``lengths[root]`` is the root edge).
+    y : (N, k) float
+        Observed species means; unobserved cells may hold anything (NaN included).
+    observed : (N, k) bool
+        Which cells of ``y`` are observed.
+    R, E : (k, k) float
+        Evolutionary rate matrix (positive definite) and species-level covariance
+        (positive semidefinite; zeros when absent).
+    err_var : (N, k) float
+        Measurement-error variances.
+    mu : (k,) float
+        Root mean.
+
+    Returns
+    -------
+    float
+    """
+    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    return float(kernels.loglik_kernel(*args))
+
+
+def loglik_and_grad(parent, lengths, y, observed, R, E, err_var, mu) -> tuple[float, dict]:
+    """Log-likelihood and its gradient with respect to every float input.
+
+    Returns
+    -------
+    logp : float
+    grad : dict
+        Keys ``"lengths", "y", "R", "E", "err_var", "mu"``, same shapes as the
+        inputs, zero at unobserved cells. ``grad["R"]`` and ``grad["E"]`` are
+        symmetric matrix derivatives: a symmetric change ``dR`` changes ``logp`` by
+        ``sum(grad["R"] * dR)``.
+    """
+    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    logp, dl, dy, dR, dE, dev, dmu = kernels.value_and_grad_kernel(*args)
+    grad = {"lengths": dl, "y": dy, "R": dR, "E": dE, "err_var": dev, "mu": dmu}
+    return float(logp), grad
+
+
+def loo_conditionals(
+    parent, lengths, y, observed, R, E, err_var, mu
+) -> tuple[np.ndarray, np.ndarray]:
+    """Predictive of each species' observation vector given all other species.
+
+    Measurement error and ``E`` are included. Returns ``mean (N, k)`` and
+    ``cov (N, k, k)``.
+    """
+    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    mean, cov, _, _ = kernels.loo_kernel(*args)
+    return mean, cov
+
+
+def loo_logdensity(parent, lengths, y, observed, R, E, err_var, mu) -> np.ndarray:
+    """Log density of each species' observed cells under its leave-one-out predictive.
+
+    Zero for a species with nothing observed. Shape ``(N,)``.
+    """
+    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    return kernels.loo_kernel(*args)[2]
+
+
+def loo_logdensity_draws(parent, lengths, y, observed, R, E, err_var, mu) -> np.ndarray:
+    """:func:`loo_logdensity` for many posterior draws, looped in numba.
+
+    Parameters
+    ----------
+    lengths : (S, n_nodes) or (n_nodes,)
+    R, E : (S, k, k)
+    err_var : (S, N, k) or (N, k)
+    mu : (S, k)
+
+    Returns
+    -------
+    (S, N) array; NaN for a draw whose likelihood cannot be evaluated.
+    """
+    parent, lengths, y, observed, R, E, err_var, mu = _prepare(
+        parent, lengths, y, observed, R, E, err_var, mu, draws=True
+    )
+    if R.ndim != 3 or E.ndim != 3 or mu.ndim != 2:
+        raise InputError("R and E must be (draws, k, k) and mu (draws, k)")
+    S = R.shape[0]
+    lengths2 = lengths.reshape(-1, lengths.shape[-1])
+    ev3 = err_var.reshape(-1, *err_var.shape[-2:])
+    for name, a in (("E", E), ("mu", mu), ("lengths", lengths2), ("err_var", ev3)):
+        if a.shape[0] not in ((S,) if name in ("E", "mu") else (1, S)):
+            raise InputError(f"{name} has {a.shape[0]} draws but R has {S}")
+    return kernels.loo_logdens_draws_kernel(parent, lengths2, y, observed, R, E, ev3, mu)
+
+
+def ancestral_states(
+    parent, lengths, y, observed, R, E, err_var, mu
+) -> tuple[np.ndarray, np.ndarray]:
+    """Posterior of the latent value at every node given all data.
+
+    Returns ``mean (n_nodes, k)`` and ``cov (n_nodes, k, k)``; rows ``0..N-1`` are
+    the latent true species means, the others the internal nodes.
+    """
+    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    mean, cov, _ = kernels.ancestral_kernel(*args)
+    return mean, cov

@@ -1,0 +1,136 @@
+"""PyTensor Op wrapping the linear-time likelihood, for PyMC, pm.sample and nutpie.
+
+One Op computes the value and the whole gradient in one call; its ``grad`` returns
+``output_gradient * d_input`` from the Op's own extra outputs, so PyTensor's merge
+optimisation evaluates the kernel once per logp-and-gradient evaluation. The tree
+(``parent``, ``lengths``) and ``observed`` are ordinary inputs, so they may be
+``pm.Data`` and be swapped without recompiling.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytensor.tensor as pt
+from pytensor.gradient import DisconnectedType, grad_not_implemented, grad_undefined
+from pytensor.graph.basic import Apply
+from pytensor.graph.op import Op
+from pytensor.link.numba.dispatch import basic as numba_basic
+from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache_key
+
+from cladewise.engine import kernels
+
+__all__ = ["TreeLoglik", "tree_loglik"]
+
+_FLOAT_INPUTS = (1, 2, 4, 5, 6, 7)  # lengths, y, R, E, err_var, mu
+
+
+class TreeLoglik(Op):
+    """``(parent, lengths, y, observed, R, E, err_var, mu) -> (logp, d_lengths, d_y,
+    d_R, d_E, d_err_var, d_mu)``.
+
+    Unobserved cells of ``y`` may hold any finite value; they are ignored.
+    """
+
+    __props__ = ()
+
+    def make_node(self, parent, lengths, y, observed, R, E, err_var, mu):
+        parent = pt.as_tensor_variable(parent)
+        if parent.dtype != "int64":
+            parent = pt.cast(parent, "int64")
+        observed = pt.as_tensor_variable(observed)
+        if observed.dtype != "bool":
+            observed = pt.neq(observed, 0)
+        floats = [
+            pt.as_tensor_variable(v).astype("float64") for v in (lengths, y, R, E, err_var, mu)
+        ]
+        lengths, y, R, E, err_var, mu = floats
+        for v, nd, name in (
+            (parent, 1, "parent"),
+            (lengths, 1, "lengths"),
+            (y, 2, "y"),
+            (observed, 2, "observed"),
+            (R, 2, "R"),
+            (E, 2, "E"),
+            (err_var, 2, "err_var"),
+            (mu, 1, "mu"),
+        ):
+            if v.ndim != nd:
+                raise TypeError(f"{name} must have {nd} dimensions, got {v.ndim}")
+        inputs = [parent, lengths, y, observed, R, E, err_var, mu]
+        outputs = [pt.scalar(dtype="float64")] + [v.type() for v in floats]
+        return Apply(self, inputs, outputs)
+
+    def perform(self, node, inputs, output_storage):
+        parent, lengths, y, observed, R, E, err_var, mu = inputs
+        res = kernels.value_and_grad_kernel(
+            np.ascontiguousarray(parent),
+            np.ascontiguousarray(lengths),
+            np.ascontiguousarray(y),
+            np.ascontiguousarray(observed),
+            np.ascontiguousarray(R),
+            np.ascontiguousarray(E),
+            np.ascontiguousarray(err_var),
+            np.ascontiguousarray(mu),
+        )
+        output_storage[0][0] = np.asarray(res[0], dtype=np.float64)
+        for i in range(1, 7):
+            output_storage[i][0] = res[i]
+
+    def infer_shape(self, fgraph, node, input_shapes):
+        return [()] + [input_shapes[i] for i in _FLOAT_INPUTS]
+
+    def grad(self, inputs, output_gradients):
+        g_logp = output_gradients[0]
+        outs = self(*inputs)
+        others = output_gradients[1:]
+        if any(not isinstance(g.type, DisconnectedType) for g in others):
+            # second derivatives are not provided
+            return [grad_not_implemented(self, i, x) for i, x in enumerate(inputs)]
+        grads = [
+            grad_undefined(self, 0, inputs[0], "parent is integer tree data"),
+            g_logp * outs[1],
+            g_logp * outs[2],
+            grad_undefined(self, 3, inputs[3], "observed is boolean data"),
+            g_logp * outs[3],
+            g_logp * outs[4],
+            g_logp * outs[5],
+            g_logp * outs[6],
+        ]
+        return grads
+
+
+_tree_loglik_op = TreeLoglik()
+
+
+def tree_loglik(parent, lengths, y, observed, R, E, err_var, mu):
+    """Log-likelihood of the tree model as a PyTensor scalar.
+
+    Usable as ``pm.Potential("loglik", tree_loglik(...))``; differentiable with
+    respect to ``lengths``, ``y``, ``R``, ``E``, ``err_var`` and ``mu``. ``parent``
+    (int) and ``observed`` (bool) are data and may be ``pm.Data``. Unobserved cells
+    of ``y`` may hold any finite value (fill them with 0). Inputs are trusted:
+    validate them once beforehand (e.g. with :func:`cladewise.engine.loglik`).
+    Returns ``-inf`` when a tip's observation covariance is not positive definite.
+    """
+    return _tree_loglik_op(parent, lengths, y, observed, R, E, err_var, mu)[0]
+
+
+@register_funcify_default_op_cache_key(TreeLoglik)
+def _numba_funcify_tree_loglik(op, node, **kwargs):
+    kernel = kernels.value_and_grad_kernel
+
+    @numba_basic.numba_njit
+    def tree_loglik_numba(parent, lengths, y, observed, R, E, err_var, mu):
+        logp, dl, dy, dR, dE, dev, dmu = kernel(
+            np.ascontiguousarray(parent),
+            np.ascontiguousarray(lengths),
+            np.ascontiguousarray(y),
+            np.ascontiguousarray(observed),
+            np.ascontiguousarray(R),
+            np.ascontiguousarray(E),
+            np.ascontiguousarray(err_var),
+            np.ascontiguousarray(mu),
+        )
+        return np.array(logp), dl, dy, dR, dE, dev, dmu
+
+    return tree_loglik_numba, 1
