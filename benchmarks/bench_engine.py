@@ -55,7 +55,7 @@ def median_time(fn, min_total: float = 0.3, min_reps: int = 5, max_reps: int = 2
 
 
 def engine_workspace_bytes(n_tips: int, n_nodes: int, k: int) -> int:
-    # Arrays the kernels allocate (numba's allocator is invisible to tracemalloc):
+    # Arrays the kernels allocate, counted from the code:
     # 5 (n, k, k) and 5 (n, k) node arrays, plus the gradient outputs.
     return 8 * (n_nodes * (5 * k * k + 5 * k) + n_nodes + 2 * n_tips * k + 2 * k * k + k)
 
@@ -118,8 +118,8 @@ def main() -> None:
               f"{r['ws'] / 2**20:13.2f} {dense_ms} {dense_mb} {ratio} {agree}")
     big = [n for n in ENGINE_SIZES if n >= 1_000]
     slope = np.polyfit(np.log(big), np.log([rows[n]["engine"] for n in big]), 1)[0]
-    print("engine peak MB: tracemalloc of the numpy entry point (validation and copies); "
-          "workspace MB: arrays the numba kernel allocates (not visible to tracemalloc)")
+    print("engine peak MB: tracemalloc of one loglik_and_grad call; "
+          "workspace MB: bytes of the arrays the kernel allocates, for comparison")
     print(f"engine time growth exponent, N = {big[0]} to {big[-1]}: {slope:.2f}")
     print(f"engine speedup vs dense at N=2000: {rows[2000]['dense'] / rows[2000]['engine']:.0f}x")
 

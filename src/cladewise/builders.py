@@ -64,6 +64,7 @@ __all__ = [
     "PriorInfo",
     "BuiltModel",
     "build_model",
+    "tree_data_values",
     "KINDS",
     "MEASUREMENT_ERROR",
     "PRIOR_KEYS",
@@ -158,6 +159,7 @@ class ModelSpec:
     measurement_error: str = "none"
     species_covariance: bool = False
     priors: dict[str, Any] = field(default_factory=dict)
+    fixed: dict[str, float] = field(default_factory=dict)
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "ModelSpec":
@@ -204,6 +206,15 @@ class ModelSpec:
                 )
             if len(set(self.traits)) != len(self.traits):
                 raise InputError("[model] traits lists a trait twice")
+        allowed = {"lambda": "lambda", "lam": "lambda", "alpha": "alpha", "kappa": "kappa",
+                   "delta": "delta", "rate_change": "rate_change"}
+        for key, value in self.fixed.items():
+            if allowed.get(key) != _PUBLIC_NAME.get(MODELS[self.evolution][0] if MODELS[self.evolution] else ""):
+                raise InputError(
+                    f"[model.fixed] {key!r} is not a parameter of the {self.evolution!r} evolution model"
+                )
+            if not isinstance(value, (int, float)):
+                raise InputError(f"[model.fixed] {key} must be a number")
         bad = sorted(set(self.priors) - set(PRIOR_KEYS))
         if bad:
             raise InputError(
@@ -267,6 +278,25 @@ class BuiltModel:
             return dict(zip(names, vals))
 
         return call
+
+
+def tree_data_values(built: "BuiltModel", tree: FlatTree) -> dict[str, np.ndarray]:
+    """Values of a model's tree ``pm.Data`` for another tree with the same species.
+
+    Pass the result as ``tree_values`` to :func:`cladewise.sampling.sample` (or to
+    ``nutpie``'s ``with_data``) to fit that tree without recompiling.
+    """
+    if list(tree.tip_names) != built.species:
+        raise InputError("the tree's tips must be the model's species in the same order (use order_tips)")
+    if tree.n_nodes != built.data.tree.n_nodes:
+        raise InputError(
+            "this tree has a different number of nodes than the compiled model's tree "
+            f"({tree.n_nodes} vs {built.data.tree.n_nodes}); polytomies differ, so it needs its own compile"
+        )
+    values = {built.tree_data[name]: arr for name, arr in tree_arrays(tree).items()}
+    values[built.tree_data["parent"]] = tree.parent
+    values[built.tree_data["tip_weights"]] = _mean_tip_weights(tree)
+    return values
 
 
 # --------------------------------------------------------------------------- helpers
@@ -396,7 +426,7 @@ def build_model(
             R, mu, y_t = _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors)
         else:
             R, mu = _rate_terms(spec, y, observed, traits, tbar, pri, priors)
-            y_t = pt.as_tensor_variable(np.where(observed, y, 0.0))
+            y_t = pm.Data("obs_values", np.where(observed, y, 0.0))
 
         # --- species-level covariance
         if spec.species_covariance:
@@ -409,9 +439,10 @@ def build_model(
         # --- measurement error
         err_var = _measurement_error(spec, data, err_cols, observed, priors, notes)
 
+        obs_t = observed if likelihood == "dense" else pm.Data("obs_mask", observed.astype(np.int8))
         pm.Potential(
             "tree_loglik",
-            _likelihood(tree, parent, lengths, y_t, observed, R, E, err_var, mu, likelihood),
+            _likelihood(tree, parent, lengths, y_t, obs_t, R, E, err_var, mu, likelihood),
         )
 
     summary_vars = [v for v in (
@@ -429,10 +460,21 @@ def build_model(
     )
 
 
+_PUBLIC_NAME = {"lam": "lambda", "alpha": "alpha", "kappa": "kappa", "delta": "delta",
+                "rate_change": "rate_change"}
+
+
 def _evolution_parameters(spec: ModelSpec, pri: dict, height: float, priors: list[PriorInfo]) -> dict:
     model = spec.evolution
     if model == "bm":
         return {}
+    if spec.fixed:
+        (key, value), = spec.fixed.items()
+        inner = MODELS[model][0]
+        priors.append(PriorInfo(_PUBLIC_NAME[inner], f"fixed at {value:g}", "set in the spec"))
+        # data, not a constant: one compiled model can be re-run at other fixed values
+        fixed = pm.Data(f"fixed_{_PUBLIC_NAME[inner]}", np.asarray(float(value)))
+        return {inner: fixed}
     if model == "lambda":
         a, b = pri.get("lambda_beta", [1.0, 1.0])
         lam = pm.Beta("lambda", alpha=float(a), beta=float(b))
@@ -579,7 +621,9 @@ def _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors)
                             "2 x sd(y) / sqrt(mean root-to-tip length)"))
     R = pt.reshape(sigma**2, (1, 1))
     pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
-    resid = np.where(observed, y, 0.0) - pt.dot(X, beta)[:, None]
+    y_d = pm.Data("obs_values", np.where(observed, y, 0.0))
+    X_d = pm.Data("design", X)
+    resid = y_d - pt.dot(X_d, beta)[:, None]
     resid = pt.where(observed, resid, 0.0)
     return R, pt.zeros(1), resid
 
@@ -612,7 +656,7 @@ def _measurement_error(spec, data, cols, observed, priors, notes):
                 se = np.where(lack, fill, se)
             out[:, j] = np.where(observed[:, j], se**2, 0.0)
         priors.append(PriorInfo("measurement error", "known: squared standard errors from the table", "as given"))
-        return pt.as_tensor_variable(out)
+        return pm.Data("obs_err_var", out)
     # specimens: partially pooled within-species variances
     if data.n is None or data.sample_var is None:
         raise InputError(

@@ -40,7 +40,7 @@ __all__ = [
 ]
 
 HDI_PROB = 0.95
-LOGLIK_VAR = "species"  # name of the log-likelihood variable (one value per species)
+LOGLIK_VAR = "y"  # log-likelihood variable (dims chain, draw, species), named like observed_data["y"]
 
 
 @dataclass
@@ -80,20 +80,32 @@ class FitResult:
         return out
 
     def to_json(self) -> dict[str, Any]:
+        """The contents of summary.json (schema in the README)."""
         rows = self.summary.replace({np.nan: None}).to_dict(orient="records")
+        info = self.info
         return {
             "cladewise_version": _version(),
-            "model": self.info.get("model", {}),
-            "n_species": self.info.get("n_species"),
-            "traits": self.info.get("traits"),
-            "loglik_kind": self.info.get("loglik_kind"),
+            "description": info.get("description", ""),
+            "model": info.get("model", {}),
+            "n_species": info.get("n_species"),
+            "species": info.get("species", []),
+            "traits": info.get("traits"),
+            "predictors": info.get("predictors", []),
+            "loglik_kind": info.get("loglik_kind"),
+            "likelihood": info.get("likelihood"),
             "hdi_prob": HDI_PROB,
             "quantities": rows,
             "diagnostics": self.diagnostics.to_dict(),
-            "priors": self.info.get("priors", []),
-            "notes": self.info.get("notes", []),
-            "sampling": self.info.get("sampling", {}),
-            "timing_seconds": self.info.get("timing", {}),
+            "priors": info.get("priors", []),
+            "notes": info.get("notes", []),
+            "sampling": info.get("sampling", {}),
+            "timing_seconds": info.get("timing", {}),
+            "data_summary": info.get("data_summary"),
+            "spec_path": info.get("spec_path"),
+            "spec_text": info.get("spec_text"),
+            "command": info.get("command"),
+            "environment": info.get("environment", {}),
+            "cautions": CAUTIONS,
         }
 
     def to_text(self) -> str:
@@ -359,6 +371,7 @@ def fit(
     spec: ModelSpec,
     options: SamplingOptions | None = None,
     likelihood: str = "tree",
+    predictive_draws: int = 200,
 ) -> FitResult:
     """Build a model, sample it and return the finished :class:`FitResult`.
 
@@ -372,6 +385,8 @@ def fit(
         Sampler settings (nutpie, 4 chains x 1000 draws by default).
     likelihood : {"tree", "dense"}
         Linear-time engine (default) or the dense reference.
+    predictive_draws : int
+        Posterior draws used for the posterior predictive group (0: none).
     """
     opts = options or SamplingOptions()
     t0 = time.perf_counter()
@@ -379,7 +394,8 @@ def fit(
     t1 = time.perf_counter()
     idata = sample(built, opts)
     t2 = time.perf_counter()
-    return finish_fit(built, idata, opts, timing={"build": t1 - t0, "sample_and_compile": t2 - t1})
+    return finish_fit(built, idata, opts, timing={"build": t1 - t0, "sample_and_compile": t2 - t1},
+                      predictive_draws=predictive_draws)
 
 
 def load_fit(out_dir: str | Path) -> tuple[az.InferenceData, dict[str, Any]]:

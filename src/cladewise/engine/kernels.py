@@ -42,6 +42,8 @@ import numpy as np
 from numba import njit
 
 _JIT = {"cache": True, "nogil": True}
+# small helpers are inlined: a call passing many arrays costs more than k x k algebra
+_INLINE = {"cache": True, "nogil": True, "inline": "always"}
 _LOG_2PI = math.log(2.0 * math.pi)
 
 MODE_GRAD = 1
@@ -50,7 +52,7 @@ MODE_ANCESTRAL = 4
 
 
 # --------------------------------------------------------------------- small algebra
-@njit(**_JIT)
+@njit(**_INLINE)
 def lu_factor(a, piv, k):
     """LU-factor ``a[:k, :k]`` in place (partial pivoting); return log|det|."""
     logdet = 0.0
@@ -78,7 +80,7 @@ def lu_factor(a, piv, k):
     return logdet
 
 
-@njit(**_JIT)
+@njit(**_INLINE)
 def lu_solve_vec(lu, piv, b, k):
     """Solve ``A x = b`` in place given :func:`lu_factor` output."""
     for i in range(k):
@@ -99,7 +101,7 @@ def lu_solve_vec(lu, piv, b, k):
         b[i] = s / lu[i, i]
 
 
-@njit(**_JIT)
+@njit(**_INLINE)
 def lu_solve_mat(lu, piv, b, k):
     """Solve ``A X = B`` in place (``B`` is k x k) given :func:`lu_factor` output."""
     for i in range(k):
@@ -122,7 +124,7 @@ def lu_solve_mat(lu, piv, b, k):
             b[i, c] = s / lu[i, i]
 
 
-@njit(**_JIT)
+@njit(**_INLINE)
 def absorb(J, h, V, m, M, piv, H, g, k):
     """Combine canonical ``(J, h)`` with ``N(m, V)``; see the module docstring.
 
@@ -153,7 +155,7 @@ def absorb(J, h, V, m, M, piv, H, g, k):
     return logdet
 
 
-@njit(**_JIT)
+@njit(**_INLINE)
 def chol_inv(K, q, W):
     """Cholesky-invert the SPD ``K[:q, :q]`` in place; inverse into ``W[:q, :q]``.
 
@@ -194,7 +196,7 @@ def chol_inv(K, q, W):
 
 
 # --------------------------------------------------------------------- the passes
-@njit(**_JIT)
+@njit(**_INLINE)
 def _observed_index(observed, i, idx):
     q = 0
     for j in range(observed.shape[1]):
@@ -232,8 +234,10 @@ def upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, 
         Jv = Ju[v]
         hv = hu[v]
         if v < ntip:
-            Jv[:] = 0.0
-            hv[:] = 0.0
+            for i in range(k):
+                hv[i] = 0.0
+                for j in range(k):
+                    Jv[i, j] = 0.0
             q = _observed_index(observed, v, idx)
             if q > 0:
                 for a in range(q):
@@ -255,8 +259,10 @@ def upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, 
                     quad += s * y[v, idx[a]]
                 total += -0.5 * quad - 0.5 * logdet - 0.5 * q * _LOG_2PI
         elif t == 0.0:
-            Jv[:, :] = Jn[v]
-            hv[:] = hn[v]
+            for i in range(k):
+                hv[i] = hn[v, i]
+                for j in range(k):
+                    Jv[i, j] = Jn[v, i, j]
         else:
             for i in range(k):
                 for j in range(k):
@@ -272,10 +278,13 @@ def upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, 
             total += -0.5 * logdet + 0.5 * quad
         p = parent[v]
         if p >= 0:
-            Js[v] = Jn[p]
-            hs[v] = hn[p]
-            Jn[p] += Jv
-            hn[p] += hv
+            # siblings before v: what the parent holds so far
+            for i in range(k):
+                hs[v, i] = hn[p, i]
+                hn[p, i] += hv[i]
+                for j in range(k):
+                    Js[v, i, j] = Jn[p, i, j]
+                    Jn[p, i, j] += Jv[i, j]
     root = n - 1
     quad = 0.0
     for i in range(k):
@@ -286,8 +295,7 @@ def upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, 
     return total + quad
 
 
-@njit(**_JIT)
-def _internal_terms(v, t, Jn, hn, m, P, R, mode, M, piv, H, g, d_lengths, d_R,
+def _internal_terms_py(v, t, Jn, hn, m, P, R, mode, M, piv, H, g, d_lengths, d_R,
                     anc_mean, anc_cov, k):
     """Gradient and ancestral terms of an internal node (or of the root)."""
     absorb(Jn[v], hn[v], P[v], m[v], M, piv, H, g, k)
@@ -316,8 +324,7 @@ def _internal_terms(v, t, Jn, hn, m, P, R, mode, M, piv, H, g, d_lengths, d_R,
                 anc_cov[v, i, j] = Pv[i, j] - s
 
 
-@njit(**_JIT)
-def _tip_terms(c, t, y, observed, R, E, err_var, m, P, mode, idx, K, W, r, Wr,
+def _tip_terms_py(c, t, y, observed, R, E, err_var, m, P, mode, idx, K, W, r, Wr,
                d_lengths, d_y, d_R, d_E, d_err_var, d_mu, is_root,
                loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov, k):
     """Gradient, LOO and ancestral terms of tip ``c`` given its outside ``N(m, P)``."""
@@ -387,6 +394,10 @@ def _tip_terms(c, t, y, observed, R, E, err_var, m, P, mode, idx, K, W, r, Wr,
                 anc_cov[c, i, j] = Pc[i, j] - s
 
 
+_internal_terms = njit(**_JIT)(_internal_terms_py)
+_tip_terms = njit(**_JIT)(_tip_terms_py)
+
+
 @njit(**_JIT)
 def downward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, hs,
              sufJ, sufh, m, P, mode, d_lengths, d_y, d_R, d_E, d_err_var, d_mu,
@@ -442,10 +453,15 @@ def downward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js
         p = parent[c]
         Jsc = Js[c]
         hsc = hs[c]
-        Jsc += sufJ[p]
-        hsc += sufh[p]
-        sufJ[p] += Ju[c]
-        sufh[p] += hu[c]
+        # add the siblings after c (suffix sums; children are visited in
+        # decreasing order) rather than subtracting c from the total, which could
+        # cancel badly when c's message dominates
+        for i in range(k):
+            hsc[i] += sufh[p, i]
+            sufh[p, i] += hu[c, i]
+            for j in range(k):
+                Jsc[i, j] += sufJ[p, i, j]
+                sufJ[p, i, j] += Ju[c, i, j]
         Pp = P[p]
         Pc = P[c]
         nonzero = False
@@ -473,8 +489,10 @@ def downward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js
                         s += T[i, a] * Pp[a, j]
                     Pc[i, j] = Pp[i, j] - s
         else:
-            m[c] = m[p]
-            Pc[:, :] = Pp
+            for i in range(k):
+                m[c, i] = m[p, i]
+                for j in range(k):
+                    Pc[i, j] = Pp[i, j]
         t = lengths[c]
         for i in range(k):
             for j in range(i + 1):
