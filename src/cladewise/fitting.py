@@ -329,11 +329,18 @@ def finish_fit(
     _set_group(idata, "observed_data", xr.Dataset({
         "y": xr.DataArray(built.y, dims=("species", "trait"), coords=coords),
     }))
-    _set_group(idata, "constant_data", xr.Dataset({
+    const = {
         "observed": xr.DataArray(built.observed, dims=("species", "trait"), coords=coords),
         "tree_parent": xr.DataArray(built.data.tree.parent, dims=("node",)),
         "tree_length": xr.DataArray(built.data.tree.length, dims=("node",)),
-    }))
+    }
+    se = built.data.se
+    if se is not None and all(t in se.columns for t in built.traits):
+        const["se"] = xr.DataArray(se[built.traits].to_numpy(dtype=float), dims=("species", "trait"), coords=coords)
+    if built.design is not None:
+        const["design"] = xr.DataArray(built.design, dims=("species", "term"),
+                                       coords={"species": built.species, "term": built.predictors})
+    _set_group(idata, "constant_data", xr.Dataset(const))
     if predictive_draws:
         yrep = posterior_predictive(built, idata, n_draws=predictive_draws, seed=options.seed)
         _set_group(idata, "posterior_predictive", xr.Dataset({"y_rep": yrep}))

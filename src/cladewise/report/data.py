@@ -1,0 +1,161 @@
+"""Everything the report needs from a saved fit folder, read once.
+
+Missing pieces (an older summary.json, a fit without log-likelihood) are recorded
+as ``None`` so each section can say what it could not show instead of failing.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import arviz as az
+import numpy as np
+import pandas as pd
+
+from cladewise.errors import InputError
+from cladewise.trees import FlatTree
+
+__all__ = ["FitView", "read_fit_folder"]
+
+
+@dataclass
+class FitView:
+    """A saved fit, ready for tables and figures."""
+
+    folder: Path
+    idata: az.InferenceData
+    info: dict[str, Any]
+    table: pd.DataFrame
+    kind: str
+    traits: list[str]
+    species: list[str]
+    y: np.ndarray | None  # (N, k) observed means, NaN where missing
+    se: np.ndarray | None  # (N, k) standard errors, NaN where unknown
+    tree: FlatTree | None
+    predictors: list[str] = field(default_factory=list)
+    design: pd.DataFrame | None = None  # regression design (species x term)
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def posterior(self):
+        return self.idata.posterior
+
+    def has(self, group: str) -> bool:
+        return group in self.idata.groups()
+
+
+def _species_from(idata: az.InferenceData, info: dict[str, Any]) -> list[str]:
+    for g in ("observed_data", "constant_data", "posterior_predictive", "log_likelihood"):
+        if g in idata.groups() and "species" in idata[g].coords:
+            return [str(s) for s in idata[g]["species"].values]
+    return [str(s) for s in info.get("species") or []]
+
+
+def read_fit_folder(folder: str | Path) -> FitView:
+    """Read posterior.nc, summary.json and summary.csv of a fit folder."""
+    out = Path(folder)
+    nc, js = out / "posterior.nc", out / "summary.json"
+    if not out.is_dir() or not nc.is_file() or not js.is_file():
+        raise InputError(
+            f"{str(out)!r} is not a cladewise fit folder (expected posterior.nc and summary.json "
+            "inside); run 'cladewise fit SPEC --out DIR' first and pass that DIR"
+        )
+    try:
+        info = json.loads(js.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{str(js)!r} could not be read as JSON ({exc}); refit to recreate it") from None
+    if not isinstance(info, dict):
+        raise InputError(f"{str(js)!r} does not hold a JSON object; refit to recreate it")
+    try:
+        idata = az.from_netcdf(nc)
+    except Exception as exc:  # netCDF errors come in many types
+        raise InputError(f"{str(nc)!r} could not be read ({exc}); refit to recreate it") from None
+    if "posterior" not in idata.groups():
+        raise InputError(f"{str(nc)!r} has no posterior group; refit to recreate it")
+
+    csv = out / "summary.csv"
+    if info.get("quantities"):
+        table = pd.DataFrame(info["quantities"])
+    elif csv.is_file():
+        table = pd.read_csv(csv)
+    else:
+        table = pd.DataFrame(columns=["quantity", "variable", "mean", "sd", "hdi_low", "hdi_high",
+                                      "prob_positive", "r_hat", "ess_bulk", "ess_tail"])
+    model = info.get("model") or {}
+    kind = str(model.get("kind") or "")
+    notes: list[str] = []
+    species = _species_from(idata, info)
+
+    y = observed = None
+    traits: list[str] = [str(t) for t in (info.get("traits") or [])]
+    if "observed_data" in idata.groups() and "y" in idata.observed_data:
+        da = idata.observed_data["y"]
+        y = np.asarray(da.values, dtype=float)
+        if "trait" in da.coords:
+            traits = [str(t) for t in da["trait"].values]
+        if y.ndim == 1:
+            y = y[:, None]
+    cd = idata.constant_data if "constant_data" in idata.groups() else None
+    if y is not None and cd is not None and "observed" in cd:
+        observed = np.asarray(cd["observed"].values, dtype=bool).reshape(y.shape)
+        y = np.where(observed, y, np.nan)
+
+    se = None
+    for name in ("se", "y_se"):
+        if cd is not None and name in cd:
+            se = np.asarray(cd[name].values, dtype=float).reshape(-1, len(traits))
+    tree = None
+    if cd is not None and "tree_parent" in cd and "tree_length" in cd and species:
+        try:
+            tree = FlatTree(np.asarray(cd["tree_parent"].values), np.asarray(cd["tree_length"].values),
+                            tuple(species))
+        except ValueError as exc:
+            notes.append(f"the stored tree could not be rebuilt ({exc})")
+    design = None
+    predictors = [str(p) for p in (info.get("predictors") or [])]
+    if cd is not None and "design" in cd:
+        d = cd["design"]
+        cols = [str(c) for c in d[d.dims[1]].values] if len(d.dims) > 1 and d.dims[1] in d.coords else predictors
+        design = pd.DataFrame(np.asarray(d.values, dtype=float), index=species, columns=cols)
+    view = FitView(out, idata, info, table, kind, traits, species, y, se, tree, predictors, design, notes)
+    if (se is None or (kind == "regression" and design is None)) and info.get("spec_path"):
+        _fill_from_spec(view)
+    return view
+
+
+def _fill_from_spec(view: FitView) -> None:
+    """Read standard errors (and predictor columns) from the spec's data files.
+
+    The fit folder does not store them; the files named in the spec are read again
+    and used only if they still hold every species of the fit.
+    """
+    path = Path(str(view.info.get("spec_path")))
+    if not path.is_file():
+        return
+    try:
+        from cladewise.builders import ModelData
+        from cladewise.spec import load_data, load_spec
+
+        match, _ = load_data(load_spec(path))
+        data = ModelData.from_match(match)
+    except Exception as exc:  # the files may have moved or changed since the fit
+        view.notes.append(f"the data files of the spec could not be read again ({exc}); "
+                          "figures are drawn without standard errors")
+        return
+    if set(view.species) - set(data.species):
+        view.notes.append("the data files of the spec no longer hold every species of the fit; "
+                          "they were not used")
+        return
+    if view.se is None and data.se is not None:
+        cols = [t for t in view.traits if t in data.se.columns]
+        if len(cols) == len(view.traits):
+            view.se = data.se.loc[view.species, cols].to_numpy(dtype=float)
+            view.notes.append("standard errors were read again from the data files named in the spec")
+    if view.kind == "regression" and view.design is None:
+        cols = [p for p in view.predictors if p in data.values.columns]
+        if cols:
+            view.design = data.values.loc[view.species, cols].astype(float)
+            view.notes.append("predictor values were read again from the data files named in the spec")
