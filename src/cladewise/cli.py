@@ -16,6 +16,7 @@ import importlib
 import json
 import sys
 import textwrap
+import warnings
 from dataclasses import dataclass
 from typing import Callable, Sequence
 
@@ -42,7 +43,7 @@ _COMMANDS: dict[str, Command] = {}
 
 #: Modules imported by :func:`main` so that their commands get registered
 #: (e.g. ``"cladewise.fit_command"``). Each calls :func:`register_command`.
-COMMAND_MODULES: list[str] = ["cladewise.commands"]
+COMMAND_MODULES: list[str] = ["cladewise.commands", "cladewise.report_command", "cladewise.compare_command", "cladewise.grid_command", "cladewise.power_command"]
 
 
 def register_command(command: Command) -> Command:
@@ -103,6 +104,10 @@ def _say(message: str) -> None:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
+    # PyTensor warns at import that no BLAS is linked; sampling runs through numba
+    # (nutpie), so the warning only confuses users of the command line.
+    warnings.filterwarnings("ignore", message=".*BLAS.*")
+    warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
     for mod in COMMAND_MODULES:
         importlib.import_module(mod)
     parser = _parser()
@@ -124,4 +129,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
+    # run through the package module so subcommands register on the same table
+    from cladewise.cli import main as _main
+
+    sys.exit(_main())

@@ -23,16 +23,24 @@ def _fit_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--strict", action="store_true",
                    help="exit with status 3 when the convergence diagnostics find a problem")
     p.add_argument("--no-report", action="store_true", help="do not write report.html")
+    from cladewise.treesample import add_tree_sample_arguments
+
+    add_tree_sample_arguments(p)  # --trees FILE, --n-trees N: fit over a sample of trees
 
 
 def _run_fit(args: argparse.Namespace) -> int:
     from cladewise.analysis import fit_spec
 
+    from cladewise.treesample import fit_tree_sample_from_args, uses_tree_sample
+
     command = "cladewise " + " ".join(shlex.quote(a) for a in sys.argv[1:])
-    result = fit_spec(
-        args.spec, args.out, overwrite=args.overwrite, command=command,
-        sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune, seed=args.seed,
-    )
+    if uses_tree_sample(args):
+        result = fit_tree_sample_from_args(args)
+    else:
+        result = fit_spec(
+            args.spec, args.out, overwrite=args.overwrite, command=command,
+            sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune, seed=args.seed,
+        )
     print(result.to_text())
     print(f"\nSaved: {args.out}/posterior.nc, summary.csv, summary.json")
     if not args.no_report:

@@ -245,6 +245,15 @@ _PROB_VARS = {"evo_corr", "evo_slope", "coef", "species_corr"}
 
 def summarise(idata: az.InferenceData, built: BuiltModel | None = None, var_names: list[str] | None = None) -> pd.DataFrame:
     """One row per reported quantity: mean, sd, HDI, P(>0), R-hat and ESS."""
+    import warnings
+
+    with warnings.catch_warnings():
+        # constant quantities (a fixed parameter) give 0/0 in R-hat and ESS: NaN is right
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return _summarise(idata, built, var_names)
+
+
+def _summarise(idata: az.InferenceData, built: BuiltModel | None, var_names: list[str] | None) -> pd.DataFrame:
     post = idata.posterior
     names = var_names or (built.summary_vars if built else list(post.data_vars))
     rows = []

@@ -144,7 +144,9 @@ def sample(
         if compiled is None:
             compiled = compile_model(built, "nutpie")
         if tree_values:
-            compiled = compiled.with_data(**tree_values)
+            # the graph may not read every tree array (Brownian motion ignores heights)
+            known = getattr(compiled, "shared_data", tree_values)
+            compiled = compiled.with_data(**{k: v for k, v in tree_values.items() if k in known})
         idata = nutpie.sample(
             compiled, draws=opts.draws, tune=opts.tune, chains=opts.chains,
             seed=opts.seed, progress_bar=progress, target_accept=opts.target_accept,
@@ -155,7 +157,7 @@ def sample(
 
         with built.model:
             if tree_values:
-                pm.set_data(tree_values)
+                pm.set_data({k: v for k, v in tree_values.items() if k in built.model.named_vars})
             idata = pm.sample(
                 draws=opts.draws, tune=opts.tune, chains=opts.chains,
                 cores=min(opts.chains, os.cpu_count() or 1), random_seed=opts.seed,
