@@ -14,7 +14,7 @@ from typing import Any
 
 from cladewise.builders import ModelData, ModelSpec
 from cladewise.errors import InputError
-from cladewise.fitting import FitResult, fit
+from cladewise.fitting import check_output_folder, FitResult, fit
 from cladewise.sampling import SamplingOptions
 from cladewise.spec import Spec, load_data, load_spec
 
@@ -51,11 +51,11 @@ def prepare_analysis(spec_path: str | Path, **sampling_overrides: Any) -> Prepar
     options = SamplingOptions.from_dict(sampling)
     match, summary = load_data(spec)
     data = ModelData.from_match(match)
-    data.notes.extend(_dropped_notes(match))
+    data.notes.extend(dropped_notes(match))
     return PreparedAnalysis(spec, data, model_spec, options, match, summary)
 
 
-def _dropped_notes(match: Any) -> list[str]:
+def dropped_notes(match: Any) -> list[str]:
     notes = []
     tree_drop = getattr(match, "dropped_from_tree", [])
     table_drop = getattr(match, "dropped_from_table", [])
@@ -98,11 +98,7 @@ def fit_spec(
     prep = prepare_analysis(spec_path, **sampling_overrides)
     if out_dir is not None:
         out = Path(out_dir)
-        if out.exists() and any(out.iterdir()) and not overwrite:
-            # refuse before spending minutes sampling
-            raise InputError(
-                f"output folder {str(out)!r} already holds files; choose a new folder or pass --overwrite"
-            )
+        check_output_folder(out, overwrite)
     result = fit(prep.model_data, prep.model_spec, prep.options)
     result.info["spec_path"] = str(prep.spec.path)
     result.info["spec_text"] = prep.spec.path.read_text()

@@ -30,6 +30,7 @@ from cladewise.sampling import Diagnostics, SamplingOptions, diagnose, sample
 
 __all__ = [
     "FitResult",
+    "check_output_folder",
     "fit",
     "finish_fit",
     "pointwise_loglik",
@@ -41,6 +42,14 @@ __all__ = [
 
 HDI_PROB = 0.95
 LOGLIK_VAR = "y"  # log-likelihood variable (dims chain, draw, species), named like observed_data["y"]
+
+
+def check_output_folder(out: Path, overwrite: bool) -> None:
+    """Refuse an existing non-empty output folder unless ``overwrite`` (never lose results)."""
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        raise InputError(
+            f"output folder {str(out)!r} already holds files; choose a new folder or pass --overwrite"
+        )
 
 
 @dataclass
@@ -61,16 +70,13 @@ class FitResult:
         refused unless ``overwrite`` is true.
         """
         out = Path(out_dir)
-        if out.exists() and any(out.iterdir()) and not overwrite:
-            raise InputError(
-                f"output folder {str(out)!r} already holds files; choose a new folder or pass --overwrite"
-            )
+        check_output_folder(out, overwrite)
         out.parent.mkdir(parents=True, exist_ok=True)
         tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
         try:
             self.idata.to_netcdf(tmp / "posterior.nc")
             self.summary.to_csv(tmp / "summary.csv", index=False)
-            (tmp / "summary.json").write_text(json.dumps(self.to_json(), indent=2, default=_json_default))
+            (tmp / "summary.json").write_text(json.dumps(self.to_json(), indent=2, default=json_default))
             if out.exists():
                 shutil.rmtree(out)
             os.replace(tmp, out)
@@ -140,7 +146,7 @@ def _version() -> str:
     return __version__
 
 
-def _json_default(o: Any) -> Any:
+def json_default(o: Any) -> Any:
     if isinstance(o, (np.integer,)):
         return int(o)
     if isinstance(o, (np.floating,)):
@@ -262,7 +268,7 @@ def _summarise(idata: az.InferenceData, built: BuiltModel | None, var_names: lis
             continue
         da = post[name]
         extra = [d for d in da.dims if d not in ("chain", "draw")]
-        for sel, label in _elements(da, extra, name):
+        for sel, label in quantity_elements(da, extra, name):
             x = da.isel(sel) if sel else da
             vals = x.values
             flat = vals.reshape(-1)
@@ -283,7 +289,7 @@ def _summarise(idata: az.InferenceData, built: BuiltModel | None, var_names: lis
     return pd.DataFrame(rows)
 
 
-def _elements(da: xr.DataArray, extra: list[str], name: str):
+def quantity_elements(da: xr.DataArray, extra: list[str], name: str):
     if not extra:
         yield {}, name
         return
@@ -370,7 +376,7 @@ def finish_fit(
         "sampling": options.__dict__,
         "timing": {**(timing or {}), "postprocess": t_post},
     }
-    idata.posterior.attrs["cladewise_info"] = json.dumps(info, default=_json_default)
+    idata.posterior.attrs["cladewise_info"] = json.dumps(info, default=json_default)
     return FitResult(idata=idata, summary=summary, diagnostics=diag, built=built, info=info)
 
 

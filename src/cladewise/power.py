@@ -49,6 +49,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from cladewise.fitting import json_default
 from cladewise.errors import InputError
 from cladewise.trees import FlatTree
 
@@ -310,21 +311,11 @@ class PowerResult:
         self.fits.to_csv(paths["fits"], index=False)
         doc = {"settings": self.settings, "table": self.table.to_dict(orient="records"),
                "note": "Data simulated by cladewise for a power study; not observations."}
-        paths["json"].write_text(json.dumps(doc, indent=2, default=_json_default) + "\n")
+        paths["json"].write_text(json.dumps(doc, indent=2, default=json_default) + "\n")
         fig = self.plot()
         fig.savefig(paths["png"], dpi=150)
         fig.savefig(paths["svg"])
         return paths
-
-
-def _json_default(o: Any) -> Any:
-    if isinstance(o, np.ndarray):
-        return o.tolist()
-    if isinstance(o, (np.integer,)):
-        return int(o)
-    if isinstance(o, (np.floating,)):
-        return float(o)
-    return str(o)
 
 
 def _output_folder(out_dir: str | Path, overwrite: bool) -> Path:

@@ -41,7 +41,7 @@ import xarray as xr
 from cladewise import sampling
 from cladewise.builders import BuiltModel, ModelData, ModelSpec, build_model, tree_data_values
 from cladewise.errors import InputError
-from cladewise.fitting import HDI_PROB, FitResult, _elements, _json_default, finish_fit, summarise
+from cladewise.fitting import check_output_folder, HDI_PROB, FitResult, quantity_elements, json_default, finish_fit, summarise
 from cladewise.sampling import RHAT_MAX, ESS_MIN, BFMI_MIN, Diagnostics, SamplingOptions
 from cladewise.trees import FlatTree, order_tips, prune_to
 
@@ -187,10 +187,7 @@ class TreeSampleFit(FitResult):
         Everything is staged in a hidden sibling folder and renamed into place.
         """
         out = Path(out_dir)
-        if out.exists() and any(out.iterdir()) and not overwrite:
-            raise InputError(
-                f"output folder {str(out)!r} already holds files; choose a new folder or pass --overwrite"
-            )
+        check_output_folder(out, overwrite)
         out.parent.mkdir(parents=True, exist_ok=True)
         holder = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
         try:
@@ -423,7 +420,7 @@ def pool_tree_fits(
     info = dict(fits[0].info)
     info["timing"] = dict(timing or {})
     info["tree_sample"] = {"tree_indices": list(map(int, tree_indices)), "seeds": list(map(int, seeds))}
-    idata.posterior.attrs["cladewise_info"] = json.dumps(info, default=_json_default)
+    idata.posterior.attrs["cladewise_info"] = json.dumps(info, default=json_default)
     var_names = built.summary_vars if built is not None else None
     summary = summarise(idata, built, var_names=var_names)
     summary = _within_tree_columns(summary, fits)
@@ -515,7 +512,7 @@ def _quantities(idata: az.InferenceData, var_names: Sequence[str]):
             continue
         da = post[name]
         extra = [d for d in da.dims if d not in ("chain", "draw")]
-        for sel, label in _elements(da, extra, name):
+        for sel, label in quantity_elements(da, extra, name):
             x = da.isel(sel) if sel else da
             yield name, label, np.asarray(x.transpose("chain", "draw").values, dtype=float)
 
@@ -676,7 +673,7 @@ def fit_spec_tree_sample(
     switches both the sampler's progress bar and the per-tree lines (default: on a
     terminal).
     """
-    from cladewise.analysis import _dropped_notes, environment
+    from cladewise.analysis import dropped_notes, environment
     from cladewise.spec import load_data, load_spec
 
     spec = load_spec(spec_path)
@@ -693,10 +690,7 @@ def fit_spec_tree_sample(
         raise InputError(f"{spec.path.name} has no [model] section; add one (see the demo specs in models/)")
     if out_dir is not None:
         out = Path(out_dir)
-        if out.exists() and any(out.iterdir()) and not overwrite:
-            raise InputError(
-                f"output folder {str(out)!r} already holds files; choose a new folder or pass --overwrite"
-            )
+        check_output_folder(out, overwrite)
     model_spec = ModelSpec.from_dict(dict(spec.model))
     samp = dict(spec.sampling)
     samp.update({k: v for k, v in sampling_overrides.items() if v is not None})
@@ -705,7 +699,7 @@ def fit_spec_tree_sample(
     options = SamplingOptions.from_dict(samp)
     match, summary = load_data(spec)
     data = ModelData.from_match(match)
-    data.notes.extend(_dropped_notes(match))
+    data.notes.extend(dropped_notes(match))
     result = fit_tree_sample(data, model_spec, match.trees, options, n_trees=n_trees, progress=progress)
     result.info["spec_path"] = str(spec.path)
     result.info["spec_text"] = spec.path.read_text()
