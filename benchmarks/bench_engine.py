@@ -55,9 +55,14 @@ def median_time(fn, min_total: float = 0.3, min_reps: int = 5, max_reps: int = 2
 
 
 def engine_workspace_bytes(n_tips: int, n_nodes: int, k: int) -> int:
-    # Arrays the kernels allocate, counted from the code:
-    # 5 (n, k, k) and 5 (n, k) node arrays, plus the gradient outputs.
-    return 8 * (n_nodes * (5 * k * k + 5 * k) + n_nodes + 2 * n_tips * k + 2 * k * k + k)
+    # Arrays the kernels allocate, counted from the code, plus the gradient outputs:
+    # k = 2 keeps 10 numbers per node and 10 more per internal node; other k use
+    # 5 (n, k, k) and 5 (n, k) node arrays.
+    if k == 2:
+        work = 10 * n_nodes + 10 * (n_nodes - n_tips)
+    else:
+        work = n_nodes * (5 * k * k + 5 * k)
+    return 8 * (work + n_nodes + 2 * n_tips * k + 2 * k * k + k)
 
 
 def dense_value_and_grad(C, y, observed, R, err_var, mu):
@@ -81,14 +86,16 @@ def main() -> None:
     rows = {}
     # compile outside the timings
     kernels.value_and_grad_kernel(*make_problem(10))
+    kernels.loglik_kernel(*make_problem(10))
     for n in ENGINE_SIZES:
         args = make_problem(n)
         t_engine = median_time(lambda: kernels.value_and_grad_kernel(*args))
+        t_value = median_time(lambda: kernels.loglik_kernel(*args))
         tracemalloc.start()
         logp, grad = loglik_and_grad(*args)
         peak_engine = tracemalloc.get_traced_memory()[1]
         tracemalloc.stop()
-        rows[n] = {"engine": t_engine, "engine_peak": peak_engine, "logp": logp,
+        rows[n] = {"engine": t_engine, "value": t_value, "engine_peak": peak_engine, "logp": logp,
                    "dR": grad["R"], "ws": engine_workspace_bytes(n, args[0].size, K)}
     for n in DENSE_SIZES:
         parent, lengths, y, observed, R, E, err_var, mu = make_problem(n)
@@ -105,7 +112,7 @@ def main() -> None:
                                  float(np.abs(dR - rows[n]["dR"]).max() / np.abs(dR).max())))
 
     print("k=2, measurement error, 5% missing, lambda=0.8; value + full gradient per call")
-    header = (f"{'N':>7} {'engine ms':>10} {'engine peak MB':>15} {'workspace MB':>13} "
+    header = (f"{'N':>7} {'value ms':>9} {'engine ms':>10} {'engine peak MB':>15} {'workspace MB':>13} "
               f"{'dense ms':>10} {'dense peak MB':>14} {'dense/engine':>13} {'max rel diff':>13}")
     print(header)
     for n in ENGINE_SIZES:
@@ -114,11 +121,12 @@ def main() -> None:
         dense_mb = f"{r['dense_peak'] / 2**20:14.1f}" if "dense" in r else f"{'-':>14}"
         ratio = f"{r['dense'] / r['engine']:12.0f}x" if "dense" in r else f"{'-':>13}"
         agree = f"{r['agree']:13.1e}" if "dense" in r else f"{'-':>13}"
-        print(f"{n:>7} {1e3 * r['engine']:10.3f} {r['engine_peak'] / 2**20:15.2f} "
+        print(f"{n:>7} {1e3 * r['value']:9.3f} {1e3 * r['engine']:10.3f} {r['engine_peak'] / 2**20:15.2f} "
               f"{r['ws'] / 2**20:13.2f} {dense_ms} {dense_mb} {ratio} {agree}")
     big = [n for n in ENGINE_SIZES if n >= 1_000]
     slope = np.polyfit(np.log(big), np.log([rows[n]["engine"] for n in big]), 1)[0]
-    print("engine peak MB: tracemalloc of one loglik_and_grad call; "
+    print("value ms: log-likelihood only (kernels.loglik_kernel); engine ms: value + "
+          "gradient; engine peak MB: tracemalloc of one loglik_and_grad call; "
           "workspace MB: bytes of the arrays the kernel allocates, for comparison")
     print(f"engine time growth exponent, N = {big[0]} to {big[-1]}: {slope:.2f}")
     print(f"engine speedup vs dense at N=2000: {rows[2000]['dense'] / rows[2000]['engine']:.0f}x")

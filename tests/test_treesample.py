@@ -131,6 +131,7 @@ def sample_fit():
     # tips in another order than the data, as a tree file may give them
     trees = [t0, order_tips(other, list(reversed(other.tip_names))), scaled]
     y = simulate_traits(t0, np.array([[1.0, 0.6], [0.6, 1.0]]), np.zeros(2), rng=rng)
+    y[3, 1] = np.nan  # a missing cell: observed data must still pool to one copy
     data = ModelData(tree=t0, values=pd.DataFrame(y, index=list(t0.tip_names), columns=["a", "b"]))
     spec = ModelSpec.from_dict({"kind": "correlated", "traits": ["a", "b"]})
     real = nutpie.compile_pymc_model
@@ -191,9 +192,9 @@ def test_loglik_uses_each_draws_own_tree(sample_fit):
             def cond(t):
                 S = np.kron(covariance(t), R)
                 a = [2 * s, 2 * s + 1]
-                b = [j for j in range(2 * N_SPECIES) if j not in a]
+                b = [j for j in range(2 * N_SPECIES) if j not in a and np.isfinite(y.ravel()[j])]
                 K = S[np.ix_(a, b)] @ np.linalg.inv(S[np.ix_(b, b)])
-                m = mu + K @ (y.ravel()[b] - np.tile(mu, N_SPECIES - 1))
+                m = mu + K @ (y.ravel()[b] - np.tile(mu, N_SPECIES)[b])
                 V = S[np.ix_(a, a)] - K @ S[np.ix_(b, a)]
                 return stats.multivariate_normal(m, V).logpdf(y[s])
 
@@ -259,6 +260,11 @@ def test_save_and_reload(sample_fit, tmp_path):
     assert list(back.posterior.coords["tree"].values) == [0, 0, 1, 1, 2, 2]
     assert not [p for p in tmp_path.iterdir() if ".partial-" in p.name]
     assert "Tree uncertainty" in res.to_text()
+    # identical observed data across trees are kept once, so the report can read them
+    assert back.observed_data["y"].dims == ("species", "trait")
+    from cladewise.report import write_fit_report
+
+    assert write_fit_report(out).is_file()
 
 
 # ------------------------------------------------------------------ disagreement and inputs

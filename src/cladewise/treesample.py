@@ -374,11 +374,18 @@ def _stack_chains(parts: list[xr.Dataset], tree_indices: Sequence[int]) -> xr.Da
     return pooled
 
 
+def _same(a: np.ndarray, b: np.ndarray) -> bool:
+    """Equal arrays, NaN equal to NaN (observed data keep NaN at missing cells)."""
+    if a.dtype.kind == "f" and b.dtype.kind == "f":
+        return bool(np.array_equal(a, b, equal_nan=True))
+    return bool(np.array_equal(a, b))
+
+
 def _stack_constants(parts: list[xr.Dataset], tree_indices: Sequence[int]) -> xr.Dataset:
     first = parts[0]
     out = {}
     for name, da in first.data_vars.items():
-        if all(np.array_equal(p[name].values, da.values) for p in parts[1:]):
+        if all(_same(p[name].values, da.values) for p in parts[1:]):
             out[name] = da
         else:
             out[name] = xr.concat([p[name] for p in parts], dim="tree").assign_coords(tree=list(tree_indices))

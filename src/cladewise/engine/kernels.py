@@ -39,7 +39,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+from llvmlite import ir
+from numba import njit, types
+from numba.core import cgutils
+from numba.extending import intrinsic
 
 _JIT = {"cache": True, "nogil": True}
 # small helpers are inlined: a call passing many arrays costs more than k x k algebra
@@ -49,6 +52,36 @@ _LOG_2PI = math.log(2.0 * math.pi)
 MODE_GRAD = 1
 MODE_LOO = 2
 MODE_ANCESTRAL = 4
+# how many nodes ahead the k = 2 passes prefetch a parent's row
+_PREFETCH_AHEAD = 8
+
+
+@intrinsic
+def _prefetch_row(typingctx, arr, i):
+    """Ask the CPU to start loading row ``i`` of a C-contiguous 2-D array.
+
+    A hint only (LLVM ``prefetch``): no effect on results. The passes read a
+    parent's row at a random place in memory after a long stretch of arithmetic,
+    which otherwise leaves the processor waiting for each such read in turn.
+    """
+    sig = types.void(arr, i)
+
+    def codegen(context, builder, signature, args):
+        aryty = signature.args[0]
+        ary = context.make_array(aryty)(context, builder, args[0])
+        zero = context.get_constant(types.intp, 0)
+        idx = context.cast(builder, args[1], signature.args[1], types.intp)
+        ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [idx, zero])
+        i8p = ir.IntType(8).as_pointer()
+        i32 = ir.IntType(32)
+        fnty = ir.FunctionType(ir.VoidType(), [i8p, i32, i32, i32])
+        fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0i8")
+        # read access, high temporal locality, data cache
+        builder.call(fn, [builder.bitcast(ptr, i8p), ir.Constant(i32, 0),
+                          ir.Constant(i32, 3), ir.Constant(i32, 1)])
+        return context.get_dummy_value()
+
+    return sig, codegen
 
 
 # --------------------------------------------------------------------- small algebra
@@ -508,6 +541,398 @@ def downward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js
                             anc_mean, anc_cov, k)
 
 
+# --------------------------------------------------------------------- k = 2 fast path
+# For two traits the generic loops, LU pivoting and per-node array views cost several
+# times the arithmetic. The functions below do the same computations in closed form
+# on scalars, with each node's symmetric 2 x 2 matrix and 2-vector packed into 5
+# numbers, ``[J00, J01, J11, h0, h1]`` for a canonical message and
+# ``[m0, m1, P00, P01, P11]`` for a moment form. At large N the passes are bound by
+# memory access (a node's parent is anywhere in the node order), so everything that
+# is read or written at the parent sits in one compact internal-node array ``Pm``
+# and the per-node data read in node order in another, ``Sq``.
+@njit(**_JIT)
+def _workspace2(n, ntip):
+    """``Pm`` (one row of 10 per internal node) and ``Sq`` (one row of 10 per node)."""
+    return np.empty((n - ntip, 10)), np.empty((n, 10))
+
+
+@njit(**_JIT)
+def _absorb2(j00, j01, j11, h0, h1, v00, v01, v10, v11, m0, m1):
+    """:func:`absorb` for k = 2: returns ``(H00, H01, H11, g0, g1, log det M)``."""
+    a00 = 1.0 + j00 * v00 + j01 * v10
+    a01 = j00 * v01 + j01 * v11
+    a10 = j01 * v00 + j11 * v10
+    a11 = 1.0 + j01 * v01 + j11 * v11
+    det = a00 * a11 - a01 * a10
+    inv = 1.0 / det
+    H00 = (a11 * j00 - a01 * j01) * inv
+    H01 = 0.5 * ((a11 * j01 - a01 * j11) + (a00 * j01 - a10 * j00)) * inv
+    H11 = (a00 * j11 - a10 * j01) * inv
+    r0 = h0 - (j00 * m0 + j01 * m1)
+    r1 = h1 - (j01 * m0 + j11 * m1)
+    g0 = (a11 * r0 - a01 * r1) * inv
+    g1 = (a00 * r1 - a10 * r0) * inv
+    return H00, H01, H11, g0, g1, math.log(abs(det))
+
+
+@njit(**_JIT)
+def _upward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq):
+    """:func:`upward` for k = 2 on the workspace of :func:`_workspace2`.
+
+    ``Pm[v - N, 0:5]`` accumulates the message at internal node ``v`` (sum of its
+    children's); ``Sq[v, 0:5]`` receives the message node ``v`` pushes across its
+    branch and ``Sq[v, 5:10]`` the sum of the messages of the siblings before ``v``.
+    With an empty ``Sq`` (value only) ``Pm`` needs just 5 columns.
+    """
+    n = parent.shape[0]
+    ntip = y.shape[0]
+    store = Sq.shape[0] > 0
+    r00 = R[0, 0]
+    r01 = R[0, 1]
+    r10 = R[1, 0]
+    r11 = R[1, 1]
+    e00 = E[0, 0]
+    e10 = E[1, 0]
+    e11 = E[1, 1]
+    for v in range(n - ntip):
+        for i in range(5):
+            Pm[v, i] = 0.0
+    total = 0.0
+    J00 = 0.0
+    J01 = 0.0
+    J11 = 0.0
+    h0 = 0.0
+    h1 = 0.0
+    for v in range(n):
+        t = lengths[v]
+        if v < ntip:
+            o0 = observed[v, 0]
+            o1 = observed[v, 1]
+            J00 = 0.0
+            J01 = 0.0
+            J11 = 0.0
+            h0 = 0.0
+            h1 = 0.0
+            if o0 and o1:
+                k00 = t * r00 + e00 + err_var[v, 0]
+                k01 = t * r10 + e10
+                k11 = t * r11 + e11 + err_var[v, 1]
+                det = k00 * k11 - k01 * k01
+                if not (k00 > 0.0 and det > 0.0):
+                    return -np.inf
+                inv = 1.0 / det
+                J00 = k11 * inv
+                J01 = -k01 * inv
+                J11 = k00 * inv
+                y0 = y[v, 0]
+                y1 = y[v, 1]
+                h0 = J00 * y0 + J01 * y1
+                h1 = J01 * y0 + J11 * y1
+                total += -0.5 * (h0 * y0 + h1 * y1) - 0.5 * math.log(det) - _LOG_2PI
+            elif o0:
+                k00 = t * r00 + e00 + err_var[v, 0]
+                if not k00 > 0.0:
+                    return -np.inf
+                J00 = 1.0 / k00
+                h0 = J00 * y[v, 0]
+                total += -0.5 * h0 * y[v, 0] - 0.5 * math.log(k00) - 0.5 * _LOG_2PI
+            elif o1:
+                k11 = t * r11 + e11 + err_var[v, 1]
+                if not k11 > 0.0:
+                    return -np.inf
+                J11 = 1.0 / k11
+                h1 = J11 * y[v, 1]
+                total += -0.5 * h1 * y[v, 1] - 0.5 * math.log(k11) - 0.5 * _LOG_2PI
+        else:
+            J00 = Pm[v - ntip, 0]
+            J01 = Pm[v - ntip, 1]
+            J11 = Pm[v - ntip, 2]
+            h0 = Pm[v - ntip, 3]
+            h1 = Pm[v - ntip, 4]
+            if t != 0.0:
+                v00 = t * r00
+                v01 = t * r01
+                v10 = t * r10
+                v11 = t * r11
+                J00, J01, J11, g0, g1, logdet = _absorb2(J00, J01, J11, h0, h1, v00, v01,
+                                                         v10, v11, 0.0, 0.0)
+                quad = (v00 * h0 + v01 * h1) * g0 + (v10 * h0 + v11 * h1) * g1
+                total += -0.5 * logdet + 0.5 * quad
+                h0 = g0
+                h1 = g1
+        if v + _PREFETCH_AHEAD < n - 1:
+            _prefetch_row(Pm, parent[v + _PREFETCH_AHEAD] - ntip)
+        p = parent[v] - ntip
+        if store:
+            Sq[v, 0] = J00
+            Sq[v, 1] = J01
+            Sq[v, 2] = J11
+            Sq[v, 3] = h0
+            Sq[v, 4] = h1
+        if p >= 0:
+            if store:
+                # siblings before v: what the parent holds so far
+                for i in range(5):
+                    Sq[v, 5 + i] = Pm[p, i]
+            Pm[p, 0] += J00
+            Pm[p, 1] += J01
+            Pm[p, 2] += J11
+            Pm[p, 3] += h0
+            Pm[p, 4] += h1
+    # J, h now hold the root's message
+    m0 = mu[0]
+    m1 = mu[1]
+    quad = (m0 * (h0 - 0.5 * (J00 * m0 + J01 * m1))
+            + m1 * (h1 - 0.5 * (J01 * m0 + J11 * m1)))
+    return total + quad
+
+
+@njit(**_JIT)
+def _tips2(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y, d_R, d_E,
+           d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
+    """:func:`_tip_terms` of every tip for k = 2, in one sequential sweep.
+
+    Unobserved cells get zero rows in ``W`` and ``W r``, which makes their terms
+    vanish without separate cases.
+    """
+    ntip = y.shape[0]
+    root = parent.shape[0] - 1
+    r00 = R[0, 0]
+    r01 = R[0, 1] + R[1, 0]
+    r11 = R[1, 1]
+    e00 = E[0, 0]
+    e01 = E[0, 1]
+    e10 = E[1, 0]
+    e11 = E[1, 1]
+    dR00 = 0.0
+    dR01 = 0.0
+    dR11 = 0.0
+    dE00 = 0.0
+    dE01 = 0.0
+    dE11 = 0.0
+    for c in range(ntip):
+        m0 = Sq[c, 0]
+        m1 = Sq[c, 1]
+        p00 = Sq[c, 2]
+        p01 = Sq[c, 3]
+        p11 = Sq[c, 4]
+        s00 = p00 + e00 + err_var[c, 0]
+        s11 = p11 + e11 + err_var[c, 1]
+        if mode & MODE_LOO:
+            loo_mean[c, 0] = m0
+            loo_mean[c, 1] = m1
+            loo_cov[c, 0, 0] = s00
+            loo_cov[c, 0, 1] = p01 + e01
+            loo_cov[c, 1, 0] = p01 + e10
+            loo_cov[c, 1, 1] = s11
+        o0 = observed[c, 0]
+        o1 = observed[c, 1]
+        w00 = 0.0
+        w01 = 0.0
+        w11 = 0.0
+        r0 = 0.0
+        r1 = 0.0
+        logdet = 0.0
+        q = 0
+        if o0 and o1:
+            s01 = p01 + e10
+            det = s00 * s11 - s01 * s01
+            inv = 1.0 / det
+            w00 = s11 * inv
+            w01 = -s01 * inv
+            w11 = s00 * inv
+            logdet = math.log(det) if (s00 > 0.0 and det > 0.0) else np.nan
+            r0 = y[c, 0] - m0
+            r1 = y[c, 1] - m1
+            q = 2
+        elif o0:
+            w00 = 1.0 / s00
+            logdet = math.log(s00) if s00 > 0.0 else np.nan
+            r0 = y[c, 0] - m0
+            q = 1
+        elif o1:
+            w11 = 1.0 / s11
+            logdet = math.log(s11) if s11 > 0.0 else np.nan
+            r1 = y[c, 1] - m1
+            q = 1
+        a0 = w00 * r0 + w01 * r1
+        a1 = w01 * r0 + w11 * r1
+        if mode & MODE_LOO:
+            loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1) - 0.5 * logdet - 0.5 * q * _LOG_2PI
+        if mode & MODE_GRAD:
+            t = lengths[c]
+            G00 = 0.5 * (a0 * a0 - w00)
+            G01 = 0.5 * (a0 * a1 - w01)
+            G11 = 0.5 * (a1 * a1 - w11)
+            d_lengths[c] = r00 * G00 + r01 * G01 + r11 * G11
+            dR00 += t * G00
+            dR01 += t * G01
+            dR11 += t * G11
+            dE00 += G00
+            dE01 += G01
+            dE11 += G11
+            d_err_var[c, 0] = G00
+            d_err_var[c, 1] = G11
+            d_y[c, 0] = -a0
+            d_y[c, 1] = -a1
+            if c == root:
+                d_mu[0] = a0
+                d_mu[1] = a1
+        if mode & MODE_ANCESTRAL:
+            anc_mean[c, 0] = m0 + p00 * a0 + p01 * a1
+            anc_mean[c, 1] = m1 + p01 * a0 + p11 * a1
+            # P - P W P
+            t00 = p00 * w00 + p01 * w01
+            t01 = p00 * w01 + p01 * w11
+            t10 = p01 * w00 + p11 * w01
+            t11 = p01 * w01 + p11 * w11
+            anc_cov[c, 0, 0] = p00 - (t00 * p00 + t01 * p01)
+            anc_cov[c, 0, 1] = p01 - (t00 * p01 + t01 * p11)
+            anc_cov[c, 1, 0] = p01 - (t10 * p00 + t11 * p01)
+            anc_cov[c, 1, 1] = p11 - (t10 * p01 + t11 * p11)
+    if mode & MODE_GRAD:
+        d_R[0, 0] += dR00
+        d_R[0, 1] += dR01
+        d_R[1, 0] += dR01
+        d_R[1, 1] += dR11
+        d_E[0, 0] += dE00
+        d_E[0, 1] += dE01
+        d_E[1, 0] += dE01
+        d_E[1, 1] += dE11
+
+
+@njit(**_JIT)
+def _downward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
+               d_lengths, d_y, d_R, d_E, d_err_var, d_mu, loo_mean, loo_cov, loo_logdens,
+               anc_mean, anc_cov):
+    """:func:`downward` for k = 2 after :func:`_upward2`.
+
+    Internal nodes' terms are computed in the main loop, the tips' in a sequential
+    sweep afterwards. ``Pm[v - N, 0:5]`` (the message at ``v``) is recycled, after
+    ``v`` is visited, as the running sum of the messages of ``v``'s children
+    visited so far; ``v``'s outside distribution ``[m0, m1, P00, P01, P11]`` goes
+    to ``Pm[v - N, 5:10]`` for an internal node and over its upward message in
+    ``Sq[v, 0:5]`` for a tip.
+    """
+    n = parent.shape[0]
+    ntip = y.shape[0]
+    want_internal = (mode & (MODE_GRAD | MODE_ANCESTRAL)) != 0
+    if mode & MODE_GRAD:
+        d_lengths[:] = 0.0
+        d_y[:] = 0.0
+        d_R[:] = 0.0
+        d_E[:] = 0.0
+        d_err_var[:] = 0.0
+        d_mu[:] = 0.0
+    r00 = R[0, 0]
+    r10 = R[1, 0]
+    r11 = R[1, 1]
+    rtr01 = R[0, 1] + R[1, 0]
+    dR00 = 0.0
+    dR01 = 0.0
+    dR11 = 0.0
+    root = n - 1
+    for c in range(root, -1, -1):
+        t = lengths[c]
+        if c == root:
+            nm0 = mu[0]
+            nm1 = mu[1]
+            q00 = 0.0
+            q01 = 0.0
+            q11 = 0.0
+        else:
+            if c >= _PREFETCH_AHEAD:
+                _prefetch_row(Pm, parent[c - _PREFETCH_AHEAD] - ntip)
+            p = parent[c] - ntip
+            # siblings' messages: those before c (from the upward pass) plus those
+            # after c (suffix sums; children are visited in decreasing order), rather
+            # than subtracting c from the total, which could cancel badly when c
+            # dominates
+            s00 = Sq[c, 5] + Pm[p, 0]
+            s01 = Sq[c, 6] + Pm[p, 1]
+            s11 = Sq[c, 7] + Pm[p, 2]
+            sh0 = Sq[c, 8] + Pm[p, 3]
+            sh1 = Sq[c, 9] + Pm[p, 4]
+            for i in range(5):
+                Pm[p, i] += Sq[c, i]
+            m0 = Pm[p, 5]
+            m1 = Pm[p, 6]
+            p00 = Pm[p, 7]
+            p01 = Pm[p, 8]
+            p11 = Pm[p, 9]
+            if s00 != 0.0 or s01 != 0.0 or s11 != 0.0:
+                # condition the parent's outside N(m_p, P_p) on the siblings' messages
+                H00, H01, H11, g0, g1, _ = _absorb2(s00, s01, s11, sh0, sh1, p00, p01,
+                                                    p01, p11, m0, m1)
+                nm0 = m0 + p00 * g0 + p01 * g1
+                nm1 = m1 + p01 * g0 + p11 * g1
+                t00 = p00 * H00 + p01 * H01
+                t01 = p00 * H01 + p01 * H11
+                t10 = p01 * H00 + p11 * H01
+                t11 = p01 * H01 + p11 * H11
+                q00 = p00 - (t00 * p00 + t01 * p01)
+                q01 = 0.5 * ((p01 - (t00 * p01 + t01 * p11))
+                             + (p01 - (t10 * p00 + t11 * p01)))
+                q11 = p11 - (t10 * p01 + t11 * p11)
+            else:
+                nm0 = m0
+                nm1 = m1
+                q00 = p00
+                q01 = p01
+                q11 = p11
+        q00 += t * r00
+        q01 += t * r10
+        q11 += t * r11
+        if c < ntip:
+            Sq[c, 0] = nm0
+            Sq[c, 1] = nm1
+            Sq[c, 2] = q00
+            Sq[c, 3] = q01
+            Sq[c, 4] = q11
+            continue
+        w = c - ntip
+        Pm[w, 5] = nm0
+        Pm[w, 6] = nm1
+        Pm[w, 7] = q00
+        Pm[w, 8] = q01
+        Pm[w, 9] = q11
+        if want_internal:
+            # gradient and ancestral terms of an internal node
+            H00, H01, H11, g0, g1, _ = _absorb2(Pm[w, 0], Pm[w, 1], Pm[w, 2], Pm[w, 3],
+                                                Pm[w, 4], q00, q01, q01, q11, nm0, nm1)
+            if mode & MODE_GRAD:
+                G00 = 0.5 * (g0 * g0 - H00)
+                G01 = 0.5 * (g0 * g1 - H01)
+                G11 = 0.5 * (g1 * g1 - H11)
+                d_lengths[c] = r00 * G00 + rtr01 * G01 + r11 * G11
+                dR00 += t * G00
+                dR01 += t * G01
+                dR11 += t * G11
+                if c == root:
+                    d_mu[0] = g0
+                    d_mu[1] = g1
+            if mode & MODE_ANCESTRAL:
+                anc_mean[c, 0] = nm0 + q00 * g0 + q01 * g1
+                anc_mean[c, 1] = nm1 + q01 * g0 + q11 * g1
+                t00 = q00 * H00 + q01 * H01
+                t01 = q00 * H01 + q01 * H11
+                t10 = q01 * H00 + q11 * H01
+                t11 = q01 * H01 + q11 * H11
+                anc_cov[c, 0, 0] = q00 - (t00 * q00 + t01 * q01)
+                anc_cov[c, 0, 1] = q01 - (t00 * q01 + t01 * q11)
+                anc_cov[c, 1, 0] = q01 - (t10 * q00 + t11 * q01)
+                anc_cov[c, 1, 1] = q11 - (t10 * q01 + t11 * q11)
+        for i in range(5):
+            Pm[w, i] = 0.0
+    if mode & MODE_GRAD:
+        d_R[0, 0] += dR00
+        d_R[0, 1] += dR01
+        d_R[1, 0] += dR01
+        d_R[1, 1] += dR11
+    _tips2(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y, d_R, d_E,
+           d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
+
+
 # --------------------------------------------------------------------- drivers
 @njit(**_JIT)
 def _workspace(n, k):
@@ -525,6 +950,9 @@ def loglik_kernel(parent, lengths, y, observed, R, E, err_var, mu):
     """Log-likelihood only (one upward pass)."""
     n = parent.shape[0]
     k = y.shape[1]
+    if k == 2:
+        return _upward2(parent, lengths, y, observed, R, E, err_var, mu,
+                        np.empty((n - y.shape[0], 5)), np.empty((0, 10)))
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
     return upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, hs)
 
@@ -534,6 +962,15 @@ def _run(parent, lengths, y, observed, R, E, err_var, mu, mode, d_lengths, d_y, 
          d_E, d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     n = parent.shape[0]
     k = y.shape[1]
+    if k == 2:
+        Pm, Sq = _workspace2(n, y.shape[0])
+        logp = _upward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq)
+        if not np.isfinite(logp):
+            return logp
+        _downward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
+                   d_lengths, d_y, d_R, d_E, d_err_var, d_mu, loo_mean, loo_cov,
+                   loo_logdens, anc_mean, anc_cov)
+        return logp
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
     logp = upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, hs)
     if not np.isfinite(logp):
@@ -631,11 +1068,6 @@ def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err_var, mu):
     ntip = y.shape[0]
     k = y.shape[1]
     out = np.empty((S, ntip))
-    Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
-    sufJ = np.empty((n, k, k))
-    sufh = np.empty((n, k))
-    m = np.empty((n, k))
-    P = np.empty((n, k, k))
     loo_mean = np.empty((ntip, k))
     loo_cov = np.empty((ntip, k, k))
     e1 = np.empty((0, k))
@@ -643,6 +1075,23 @@ def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err_var, mu):
     e0 = np.empty(0)
     ek = np.empty((k, k))
     ev = np.empty(k)
+    if k == 2:
+        Pm, Sq = _workspace2(n, ntip)
+        for s in range(S):
+            ln = lengths[s if lengths.shape[0] > 1 else 0]
+            evs = err_var[s if err_var.shape[0] > 1 else 0]
+            logp = _upward2(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq)
+            if not np.isfinite(logp):
+                out[s, :] = np.nan
+                continue
+            _downward2(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq, MODE_LOO,
+                       e0, e1, ek, ek, e1, ev, loo_mean, loo_cov, out[s], e1, e2)
+        return out
+    Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
+    sufJ = np.empty((n, k, k))
+    sufh = np.empty((n, k))
+    m = np.empty((n, k))
+    P = np.empty((n, k, k))
     for s in range(S):
         ln = lengths[s if lengths.shape[0] > 1 else 0]
         evs = err_var[s if err_var.shape[0] > 1 else 0]

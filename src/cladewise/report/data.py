@@ -109,9 +109,15 @@ def read_fit_folder(folder: str | Path) -> FitView:
             se = np.asarray(cd[name].values, dtype=float).reshape(-1, len(traits))
     tree = None
     if cd is not None and "tree_parent" in cd and "tree_length" in cd and species:
+        parent_da, length_da = cd["tree_parent"], cd["tree_length"]
+        if "tree" in length_da.dims:
+            # a fit pooled over a tree sample: draw the first tree and say so
+            notes.append("fit pooled over a sample of trees: figures that need a tree use its first tree")
+            length_da = length_da.isel(tree=0)
+            if "tree" in parent_da.dims:
+                parent_da = parent_da.isel(tree=0)
         try:
-            tree = FlatTree(np.asarray(cd["tree_parent"].values), np.asarray(cd["tree_length"].values),
-                            tuple(species))
+            tree = FlatTree(np.asarray(parent_da.values), np.asarray(length_da.values), tuple(species))
         except ValueError as exc:
             notes.append(f"the stored tree could not be rebuilt ({exc})")
     design = None

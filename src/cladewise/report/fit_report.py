@@ -404,7 +404,8 @@ def _reproduce_html(view: FitView, tables: dict[str, pd.DataFrame]) -> str:
         rows = [(k, "" if v is None else str(v)) for k, v in samp.items()]
         parts.append(f"<h3>Sampler settings (seed {esc(samp.get('seed', 'not recorded'))})</h3>"
                      + table_html(pd.DataFrame(rows, columns=["setting", "value"])))
-    timing = info.get("timing_seconds") or {}
+    timing = {k: v for k, v in (info.get("timing_seconds") or {}).items()
+              if isinstance(v, (int, float))}  # tree-sample fits also keep per-tree lists
     if timing:
         parts.append("<p>Time taken: " + esc(", ".join(f"{k.replace('_', ' ')} {float(v):.1f} s"
                                                        for k, v in timing.items())) + ".</p>")
