@@ -185,15 +185,21 @@ def test_psis_loo_agrees_with_exact_refits(small_fits):
 def test_refit_influential_replaces_exactly_the_high_k_species(small_fits):
     fit = small_fits["correlated"]
     loo = loo_species(fit)
-    high = list(loo.pointwise.index[loo.pointwise["pareto_k"] > 0.7])
-    if not high:
-        pytest.skip("no species with Pareto k > 0.7 in this fit")
-    out = refit_influential(fit.built, fit.idata, REFIT, loo=loo, max_refits=1)
-    top = str(loo.pointwise["pareto_k"].idxmax())
-    assert out.refitted == [top] and out.flagged == [s for s in high if s != top]
-    assert top in loo.to_text() and top not in out.flagged
+    k = loo.pointwise["pareto_k"]
+    # 0.7 is the usual cut (Vehtari et al. 2024); whether a species of this small fit
+    # exceeds it depends on the draws, so the threshold is set between the two largest
+    # k values: exactly one species is then flagged, and it must be the one refitted.
+    second, first = np.sort(k.to_numpy())[-2:]
+    thr = float(second + first) / 2
+    out = refit_influential(fit.built, fit.idata, REFIT, threshold=thr, loo=loo, max_refits=1)
+    top = str(k.idxmax())
+    assert out.refitted == [top] and out.flagged == []
     assert np.isfinite(out.pointwise.loc[top, "elpd_i"])
+    untouched = [s for s in k.index if s != top]
+    np.testing.assert_allclose(out.pointwise.loc[untouched, "elpd_i"], loo.pointwise.loc[untouched, "elpd_i"])
     assert out.elpd == pytest.approx(out.pointwise["elpd_i"].sum())
+    if first > 0.7:
+        assert top in loo.to_text()  # species above 0.7 are named in the output
 
 
 def test_correlated_model_wins_on_strongly_correlated_data(small_fits):

@@ -33,6 +33,13 @@ class Skip(Exception):
     """A figure that does not apply to this fit (message: why)."""
 
 
+def trait_label(view, name: str) -> str:
+    """Axis label of a trait: 'log(name)' when the analysis log-transformed it."""
+    summary = (view.info or {}).get("data_summary") or {}
+    logged = {t.get("name") for t in summary.get("traits", []) if isinstance(t, dict) and t.get("logged")}
+    return f"log({name})" if name in logged else name
+
+
 def _flat(da) -> np.ndarray:
     return np.asarray(da.values, dtype=float).reshape(-1)
 
@@ -225,8 +232,8 @@ def data_scatter(view: FitView):
     ols = stats.linregress(x[ok], y[ok])
     ax.plot(grid, ols.intercept + ols.slope * grid, color=OKABE_ITO["vermillion"], linestyle="--",
             linewidth=1.5, label=f"ordinary least squares, ignores the tree (slope {ols.slope:.3g})")
-    ax.set_xlabel(xname)
-    ax.set_ylabel(yname)
+    ax.set_xlabel(trait_label(view, xname))
+    ax.set_ylabel(trait_label(view, yname))
     ax.legend(fontsize=7, frameon=False, loc="upper left")
     fig.tight_layout()
     if view.kind == "regression":
@@ -280,8 +287,8 @@ def contrasts_plot(view: FitView):
     ax.plot(g, slope * g, color=OKABE_ITO["black"], linestyle="-", linewidth=1.5,
             label=f"regression through the origin (slope {slope:.3g})")
     ax.axhline(0, color="#999999", linewidth=0.6, linestyle=":")
-    ax.set_xlabel(f"standardized contrast of {xname}")
-    ax.set_ylabel(f"standardized contrast of {yname}")
+    ax.set_xlabel(f"standardized contrast of {trait_label(view, xname)}")
+    ax.set_ylabel(f"standardized contrast of {trait_label(view, yname)}")
     ax.legend(fontsize=7, frameon=False)
     fig.tight_layout()
     cap = ("Standardized independent contrasts (Felsenstein 1985) on the fitted tree with its original "
