@@ -26,7 +26,9 @@ def _symbolic(case):
 
 
 def test_op_value_and_gradient_python_perform():
-    # Value against the scipy dense density; gradient against the engine's own
+    # Value against the scipy dense multivariate normal density of the tree model
+    # (Felsenstein 1973, Am. J. Hum. Genet. 25:471-492: Brownian motion gives a Gaussian
+    # with shared-path covariance); gradient against the engine's own
     # numpy gradient (itself checked against finite differences of scipy).
     case = make_case(21, 12, 2, root_edge=True, with_E=True, p_missing=0.2)
     case["y"][~case["observed"]] = 0.0
