@@ -6,6 +6,7 @@ scaling internal branches. The engine is timed at the kernel the PyTensor Op cal
 (``kernels.value_and_grad_kernel``); the dense reference is Cholesky-based
 numpy/scipy on the (N k) x (N k) covariance: value plus gradient with respect to R
 via Sigma^-1 (the tree covariance C is precomputed and not timed).
+A last table times k = 1 (first trait only) on the same trees.
 
 Run: ``python benchmarks/bench_engine.py`` (about a minute on 2 cores).
 """
@@ -42,6 +43,13 @@ def make_problem(n: int, seed: int = 0):
     return parent, lengths, y, observed, R, E, err_var, mu
 
 
+def make_problem_k1(n: int, seed: int = 0):
+    """Single-trait version of :func:`make_problem` (invented data)."""
+    parent, lengths, y, observed, R, E, err_var, mu = make_problem(n, seed)
+    return (parent, lengths, y[:, :1].copy(), observed[:, :1].copy(), R[:1, :1].copy(),
+            E[:1, :1].copy(), err_var[:, :1].copy(), mu[:1].copy())
+
+
 def median_time(fn, min_total: float = 0.3, min_reps: int = 5, max_reps: int = 2000) -> float:
     times = []
     start = time.perf_counter()
@@ -56,7 +64,8 @@ def median_time(fn, min_total: float = 0.3, min_reps: int = 5, max_reps: int = 2
 
 def engine_workspace_bytes(n_tips: int, n_nodes: int, k: int) -> int:
     # Arrays the kernels allocate, counted from the code, plus the gradient outputs:
-    # k = 2 keeps 10 numbers per node and 10 more per internal node; other k use
+    # k = 2 keeps 10 numbers per node and 10 more per internal node (k = 1: 4 and 4,
+    # not used here); other k use
     # 5 (n, k, k) and 5 (n, k) node arrays.
     if k == 2:
         work = 10 * n_nodes + 10 * (n_nodes - n_tips)
@@ -130,6 +139,16 @@ def main() -> None:
           "workspace MB: bytes of the arrays the kernel allocates, for comparison")
     print(f"engine time growth exponent, N = {big[0]} to {big[-1]}: {slope:.2f}")
     print(f"engine speedup vs dense at N=2000: {rows[2000]['dense'] / rows[2000]['engine']:.0f}x")
+
+    # k = 1 has its own closed-form path in the kernels
+    kernels.value_and_grad_kernel(*make_problem_k1(10))
+    kernels.loglik_kernel(*make_problem_k1(10))
+    print("k=1, same setting: value ms / engine ms (value + gradient)")
+    for n in [1_000, 10_000, 50_000]:
+        args = make_problem_k1(n)
+        t_value = median_time(lambda: kernels.loglik_kernel(*args))
+        t_engine = median_time(lambda: kernels.value_and_grad_kernel(*args))
+        print(f"{n:>7} {1e3 * t_value:9.3f} {1e3 * t_engine:10.3f}")
 
 
 if __name__ == "__main__":

@@ -933,6 +933,212 @@ def _downward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
            d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
 
 
+# --------------------------------------------------------------------- k = 1 fast path
+# One trait (single-trait models, phylogenetic regressions) in the same layout as the
+# k = 2 path, with scalars: a canonical message is ``[J, h]`` and a moment form
+# ``[m, P]``.
+@njit(**_JIT)
+def _workspace1(n, ntip):
+    """``Pm`` (one row of 4 per internal node) and ``Sq`` (one row of 4 per node)."""
+    return np.empty((n - ntip, 4)), np.empty((n, 4))
+
+
+@njit(**_INLINE)
+def _absorb1(j, h, v, m):
+    """:func:`absorb` for k = 1: returns ``(H, g, 1 / M)``.
+
+    The Kalman-updated variance ``v - v H v`` equals ``v / M``, which has no
+    cancellation (it is exactly 0 when ``v`` is).
+    """
+    inv = 1.0 / (1.0 + j * v)
+    return j * inv, (h - j * m) * inv, inv
+
+
+@njit(**_JIT)
+def _upward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq):
+    """:func:`upward` for k = 1 on the workspace of :func:`_workspace1`.
+
+    ``Pm[v - N, 0:2]`` accumulates the message at internal node ``v``; ``Sq[v, 0:2]``
+    receives the message node ``v`` pushes across its branch and ``Sq[v, 2:4]`` the
+    sum of the messages of the siblings before ``v``. With an empty ``Sq`` (value
+    only) ``Pm`` needs just 2 columns.
+    """
+    n = parent.shape[0]
+    ntip = y.shape[0]
+    store = Sq.shape[0] > 0
+    r = R[0, 0]
+    e = E[0, 0]
+    for v in range(n - ntip):
+        Pm[v, 0] = 0.0
+        Pm[v, 1] = 0.0
+    total = 0.0
+    J = 0.0
+    h = 0.0
+    for v in range(n):
+        t = lengths[v]
+        if v < ntip:
+            J = 0.0
+            h = 0.0
+            if observed[v, 0]:
+                kv = t * r + e + err_var[v, 0]
+                if not kv > 0.0:
+                    return -np.inf
+                J = 1.0 / kv
+                yv = y[v, 0]
+                h = J * yv
+                total += -0.5 * h * yv - 0.5 * math.log(kv) - 0.5 * _LOG_2PI
+        else:
+            J = Pm[v - ntip, 0]
+            h = Pm[v - ntip, 1]
+            if t != 0.0:
+                vv = t * r
+                J, g, inv = _absorb1(J, h, vv, 0.0)
+                total += 0.5 * math.log(abs(inv)) + 0.5 * (vv * h) * g
+                h = g
+        if v + _PREFETCH_AHEAD < n - 1:
+            _prefetch_row(Pm, parent[v + _PREFETCH_AHEAD] - ntip)
+        p = parent[v] - ntip
+        if store:
+            Sq[v, 0] = J
+            Sq[v, 1] = h
+        if p >= 0:
+            if store:
+                # siblings before v: what the parent holds so far
+                Sq[v, 2] = Pm[p, 0]
+                Sq[v, 3] = Pm[p, 1]
+            Pm[p, 0] += J
+            Pm[p, 1] += h
+    # J, h now hold the root's message
+    m = mu[0]
+    return total + m * (h - 0.5 * (J * m))
+
+
+@njit(**_JIT)
+def _tips1(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y, d_R, d_E,
+           d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
+    """:func:`_tip_terms` of every tip for k = 1, in one sequential sweep."""
+    ntip = y.shape[0]
+    root = parent.shape[0] - 1
+    r = R[0, 0]
+    e = E[0, 0]
+    dR = 0.0
+    dE = 0.0
+    for c in range(ntip):
+        m = Sq[c, 0]
+        p = Sq[c, 1]
+        s = p + e + err_var[c, 0]
+        if mode & MODE_LOO:
+            loo_mean[c, 0] = m
+            loo_cov[c, 0, 0] = s
+        if not observed[c, 0]:
+            # no terms; kept out of the sums so that a NaN branch length of an
+            # unobserved tip does not leak into d_R (as in the general path)
+            if mode & MODE_LOO:
+                loo_logdens[c] = 0.0
+            if mode & MODE_ANCESTRAL:
+                anc_mean[c, 0] = m
+                anc_cov[c, 0, 0] = p
+            continue
+        w = 1.0 / s
+        logdet = math.log(s) if s > 0.0 else np.nan
+        res = y[c, 0] - m
+        a = w * res
+        if mode & MODE_LOO:
+            loo_logdens[c] = -0.5 * (a * res) - 0.5 * logdet - 0.5 * _LOG_2PI
+        if mode & MODE_GRAD:
+            G = 0.5 * (a * a - w)
+            d_lengths[c] = r * G
+            dR += lengths[c] * G
+            dE += G
+            d_err_var[c, 0] = G
+            d_y[c, 0] = -a
+            if c == root:
+                d_mu[0] = a
+        if mode & MODE_ANCESTRAL:
+            anc_mean[c, 0] = m + p * a
+            # p - p w p, as p (s - p) / s without cancellation
+            anc_cov[c, 0, 0] = p * ((e + err_var[c, 0]) * w)
+    if mode & MODE_GRAD:
+        d_R[0, 0] += dR
+        d_E[0, 0] += dE
+
+
+@njit(**_JIT)
+def _downward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
+               d_lengths, d_y, d_R, d_E, d_err_var, d_mu, loo_mean, loo_cov, loo_logdens,
+               anc_mean, anc_cov):
+    """:func:`downward` for k = 1 after :func:`_upward1`.
+
+    Same scheme as :func:`_downward2`: ``Pm[v - N, 0:2]`` is recycled as the running
+    sum of the messages of ``v``'s children visited so far; ``v``'s outside
+    distribution ``[m, P]`` goes to ``Pm[v - N, 2:4]`` for an internal node and over
+    its upward message in ``Sq[v, 0:2]`` for a tip.
+    """
+    n = parent.shape[0]
+    ntip = y.shape[0]
+    want_internal = (mode & (MODE_GRAD | MODE_ANCESTRAL)) != 0
+    if mode & MODE_GRAD:
+        d_lengths[:] = 0.0
+        d_y[:] = 0.0
+        d_R[:] = 0.0
+        d_E[:] = 0.0
+        d_err_var[:] = 0.0
+        d_mu[:] = 0.0
+    r = R[0, 0]
+    dR = 0.0
+    root = n - 1
+    for c in range(root, -1, -1):
+        t = lengths[c]
+        if c == root:
+            nm = mu[0]
+            q = 0.0
+        else:
+            if c >= _PREFETCH_AHEAD:
+                _prefetch_row(Pm, parent[c - _PREFETCH_AHEAD] - ntip)
+            p = parent[c] - ntip
+            # siblings' messages: before c (upward pass) plus after c (suffix sums)
+            sJ = Sq[c, 2] + Pm[p, 0]
+            sh = Sq[c, 3] + Pm[p, 1]
+            Pm[p, 0] += Sq[c, 0]
+            Pm[p, 1] += Sq[c, 1]
+            m = Pm[p, 2]
+            P = Pm[p, 3]
+            if sJ != 0.0:
+                # condition the parent's outside N(m_p, P_p) on the siblings' messages
+                _, g, inv = _absorb1(sJ, sh, P, m)
+                nm = m + P * g
+                q = P * inv
+            else:
+                nm = m
+                q = P
+        q += t * r
+        if c < ntip:
+            Sq[c, 0] = nm
+            Sq[c, 1] = q
+            continue
+        w = c - ntip
+        Pm[w, 2] = nm
+        Pm[w, 3] = q
+        if want_internal:
+            # gradient and ancestral terms of an internal node
+            H, g, inv = _absorb1(Pm[w, 0], Pm[w, 1], q, nm)
+            if mode & MODE_GRAD:
+                G = 0.5 * (g * g - H)
+                d_lengths[c] = r * G
+                dR += t * G
+                if c == root:
+                    d_mu[0] = g
+            if mode & MODE_ANCESTRAL:
+                anc_mean[c, 0] = nm + q * g
+                anc_cov[c, 0, 0] = q * inv
+        Pm[w, 0] = 0.0
+        Pm[w, 1] = 0.0
+    if mode & MODE_GRAD:
+        d_R[0, 0] += dR
+    _tips1(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y, d_R, d_E,
+           d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
+
+
 # --------------------------------------------------------------------- drivers
 @njit(**_JIT)
 def _workspace(n, k):
@@ -953,6 +1159,9 @@ def loglik_kernel(parent, lengths, y, observed, R, E, err_var, mu):
     if k == 2:
         return _upward2(parent, lengths, y, observed, R, E, err_var, mu,
                         np.empty((n - y.shape[0], 5)), np.empty((0, 10)))
+    if k == 1:
+        return _upward1(parent, lengths, y, observed, R, E, err_var, mu,
+                        np.empty((n - y.shape[0], 2)), np.empty((0, 4)))
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
     return upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, hs)
 
@@ -968,6 +1177,15 @@ def _run(parent, lengths, y, observed, R, E, err_var, mu, mode, d_lengths, d_y, 
         if not np.isfinite(logp):
             return logp
         _downward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
+                   d_lengths, d_y, d_R, d_E, d_err_var, d_mu, loo_mean, loo_cov,
+                   loo_logdens, anc_mean, anc_cov)
+        return logp
+    if k == 1:
+        Pm, Sq = _workspace1(n, y.shape[0])
+        logp = _upward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq)
+        if not np.isfinite(logp):
+            return logp
+        _downward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
                    d_lengths, d_y, d_R, d_E, d_err_var, d_mu, loo_mean, loo_cov,
                    loo_logdens, anc_mean, anc_cov)
         return logp
@@ -1085,6 +1303,18 @@ def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err_var, mu):
                 out[s, :] = np.nan
                 continue
             _downward2(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq, MODE_LOO,
+                       e0, e1, ek, ek, e1, ev, loo_mean, loo_cov, out[s], e1, e2)
+        return out
+    if k == 1:
+        Pm, Sq = _workspace1(n, ntip)
+        for s in range(S):
+            ln = lengths[s if lengths.shape[0] > 1 else 0]
+            evs = err_var[s if err_var.shape[0] > 1 else 0]
+            logp = _upward1(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq)
+            if not np.isfinite(logp):
+                out[s, :] = np.nan
+                continue
+            _downward1(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq, MODE_LOO,
                        e0, e1, ek, ek, e1, ev, loo_mean, loo_cov, out[s], e1, e2)
         return out
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
