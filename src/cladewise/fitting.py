@@ -35,6 +35,7 @@ __all__ = [
     "finish_fit",
     "pointwise_loglik",
     "summarise",
+    "iter_quantities",
     "load_fit",
     "HDI_PROB",
     "LOGLIK_VAR",
@@ -259,33 +260,38 @@ def summarise(idata: az.InferenceData, built: BuiltModel | None = None, var_name
         return _summarise(idata, built, var_names)
 
 
-def _summarise(idata: az.InferenceData, built: BuiltModel | None, var_names: list[str] | None) -> pd.DataFrame:
+def iter_quantities(idata: az.InferenceData, var_names: list[str]):
+    """Yield (variable, label, draws as a chain x draw array) for every reported element.
+
+    Correlation matrices give their upper triangle, slope matrices their off-diagonal.
+    """
     post = idata.posterior
-    names = var_names or (built.summary_vars if built else list(post.data_vars))
-    rows = []
-    for name in names:
+    for name in var_names:
         if name not in post:
             continue
         da = post[name]
         extra = [d for d in da.dims if d not in ("chain", "draw")]
         for sel, label in quantity_elements(da, extra, name):
             x = da.isel(sel) if sel else da
-            vals = x.values
-            flat = vals.reshape(-1)
-            hdi = az.hdi(flat, hdi_prob=HDI_PROB)
-            row = {
-                "quantity": label, "variable": name,
-                "mean": float(flat.mean()), "sd": float(flat.std(ddof=1)),
-                "hdi_low": float(hdi[0]), "hdi_high": float(hdi[1]),
-                "prob_positive": float((flat > 0).mean()) if name in _PROB_VARS else np.nan,
-            }
-            if vals.shape[0] > 1:
-                row["r_hat"] = float(az.rhat(vals))
-            else:
-                row["r_hat"] = np.nan
-            row["ess_bulk"] = float(az.ess(vals, method="bulk"))
-            row["ess_tail"] = float(az.ess(vals, method="tail"))
-            rows.append(row)
+            yield name, label, np.asarray(x.transpose("chain", "draw").values, dtype=float)
+
+
+def _summarise(idata: az.InferenceData, built: BuiltModel | None, var_names: list[str] | None) -> pd.DataFrame:
+    names = var_names or (built.summary_vars if built else list(idata.posterior.data_vars))
+    rows = []
+    for name, label, vals in iter_quantities(idata, names):
+        flat = vals.reshape(-1)
+        hdi = az.hdi(flat, hdi_prob=HDI_PROB)
+        row = {
+            "quantity": label, "variable": name,
+            "mean": float(flat.mean()), "sd": float(flat.std(ddof=1)),
+            "hdi_low": float(hdi[0]), "hdi_high": float(hdi[1]),
+            "prob_positive": float((flat > 0).mean()) if name in _PROB_VARS else np.nan,
+            "r_hat": float(az.rhat(vals)) if vals.shape[0] > 1 else np.nan,
+            "ess_bulk": float(az.ess(vals, method="bulk")),
+            "ess_tail": float(az.ess(vals, method="tail")),
+        }
+        rows.append(row)
     return pd.DataFrame(rows)
 
 

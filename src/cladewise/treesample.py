@@ -41,7 +41,15 @@ import xarray as xr
 from cladewise import sampling
 from cladewise.builders import BuiltModel, ModelData, ModelSpec, build_model, tree_data_values
 from cladewise.errors import InputError
-from cladewise.fitting import check_output_folder, HDI_PROB, FitResult, quantity_elements, json_default, finish_fit, summarise
+from cladewise.fitting import (
+    HDI_PROB,
+    FitResult,
+    check_output_folder,
+    finish_fit,
+    iter_quantities,
+    json_default,
+    summarise,
+)
 from cladewise.sampling import RHAT_MAX, ESS_MIN, BFMI_MIN, Diagnostics, SamplingOptions
 from cladewise.trees import FlatTree, order_tips, prune_to
 
@@ -512,18 +520,6 @@ def _tree_groups(idata: az.InferenceData) -> tuple[np.ndarray, np.ndarray]:
     return tree_of_chain, np.unique(tree_of_chain)
 
 
-def _quantities(idata: az.InferenceData, var_names: Sequence[str]):
-    post = idata.posterior
-    for name in var_names:
-        if name not in post:
-            continue
-        da = post[name]
-        extra = [d for d in da.dims if d not in ("chain", "draw")]
-        for sel, label in quantity_elements(da, extra, name):
-            x = da.isel(sel) if sel else da
-            yield name, label, np.asarray(x.transpose("chain", "draw").values, dtype=float)
-
-
 def tree_variance_share(pooled: Any, var_names: Sequence[str] | None = None) -> pd.DataFrame:
     """Share of posterior variance due to tree uncertainty, per reported quantity.
 
@@ -549,7 +545,7 @@ def tree_variance_share(pooled: Any, var_names: Sequence[str] | None = None) -> 
     names = list(var_names) if var_names else _default_vars(pooled, idata)
     tree_of_chain, trees = _tree_groups(idata)
     rows = []
-    for name, label, vals in _quantities(idata, names):
+    for name, label, vals in iter_quantities(idata, names):
         groups = [vals[tree_of_chain == t].ravel() for t in trees]
         means = np.array([g.mean() for g in groups])
         within = np.array([g.var() for g in groups])
@@ -575,7 +571,7 @@ def per_tree_summary(pooled: Any, var_names: Sequence[str] | None = None) -> pd.
     names = list(var_names) if var_names else _default_vars(pooled, idata)
     tree_of_chain, trees = _tree_groups(idata)
     rows = []
-    for name, label, vals in _quantities(idata, names):
+    for name, label, vals in iter_quantities(idata, names):
         for t in trees:
             flat = vals[tree_of_chain == t].ravel()
             hdi = az.hdi(flat, hdi_prob=HDI_PROB)
@@ -640,7 +636,7 @@ def plot_tree_sample(
             ax.hlines(ypos, g["hdi_low"], g["hdi_high"], color=_BLUE, lw=1.0)
             ax.plot(g["mean"], ypos, "o", color=_BLUE, ms=2.5, label="one tree")
             name = g["variable"].iloc[0]
-            for _, label, vals in _quantities(idata, [name]):
+            for _, label, vals in iter_quantities(idata, [name]):
                 if label == q:
                     flat = vals.ravel()
                     lo, hi = az.hdi(flat, hdi_prob=HDI_PROB)
