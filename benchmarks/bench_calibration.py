@@ -23,9 +23,9 @@ from pathlib import Path
 
 import numpy as np
 
-from cladewise.power import run_calibration
-from cladewise.sampling import SamplingOptions
-from cladewise.trees import FlatTree, parse_newick
+from cladewise.studies.power import run_calibration
+from cladewise.inference.sampling import SamplingOptions
+from cladewise.data.trees import FlatTree, parse_newick
 
 
 def coalescent_tree(n: int, seed: int) -> FlatTree:

@@ -23,9 +23,9 @@ import pandas as pd
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
-from cladewise.builders import ModelData, ModelSpec, build_model  # noqa: E402
-from cladewise.sampling import SamplingOptions, compile_model, diagnose, sample  # noqa: E402
-from cladewise.simulate import simulate_traits  # noqa: E402
+from cladewise.model.build import ModelData, ModelSpec, build_model  # noqa: E402
+from cladewise.inference.sampling import SamplingOptions, compile_model, diagnose, sample  # noqa: E402
+from cladewise.studies.simulate import simulate_traits  # noqa: E402
 from treegen import random_tree  # noqa: E402
 
 
@@ -34,7 +34,7 @@ def dataset(n: int, seed: int) -> ModelData:
     tree = random_tree(n, rng, True)
     tree = tree.with_lengths(tree.length / tree.tip_heights().max())  # unit height
     R = np.array([[1.0, 0.5], [0.5, 1.0]]) * 0.2
-    from cladewise.evolution import transformed_lengths
+    from cladewise.model.evolution import transformed_lengths
 
     x = simulate_traits(tree, R, [0.0, 0.0], lengths=transformed_lengths(tree, "lambda", lam=0.8), rng=rng)
     se = np.full((n, 2), 0.1)

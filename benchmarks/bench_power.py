@@ -19,9 +19,9 @@ import sys
 import time
 from pathlib import Path
 
-from cladewise.power import run_power_study
-from cladewise.sampling import SamplingOptions
-from cladewise.trees import FlatTree, parse_newick
+from cladewise.studies.power import run_power_study
+from cladewise.inference.sampling import SamplingOptions
+from cladewise.data.trees import FlatTree, parse_newick
 
 sys.path.insert(0, str(Path(__file__).parent))
 from bench_calibration import coalescent_tree  # noqa: E402

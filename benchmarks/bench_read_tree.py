@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-from cladewise import trees as T
+from cladewise.data import trees as T
 
 
 def random_newick(n: int, seed: int = 1) -> str:

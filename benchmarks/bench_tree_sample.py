@@ -2,7 +2,7 @@
 
 Runs the demo correlated model (models/demo_correlated.toml, invented data) once on
 the reference tree (build, compile, sample, post-process) and then over N trees of
-the demo's 100-tree sample with one compile (cladewise.treesample.fit_tree_sample).
+the demo's 100-tree sample with one compile (cladewise.inference.treesample.fit_tree_sample).
 Prints the wall times, the compile share of each and the ratios
 
     tree run / (N x single-tree fit)                 (what compiling once saves)
@@ -20,11 +20,11 @@ import argparse
 import time
 from pathlib import Path
 
-from cladewise.analysis import prepare_analysis
-from cladewise.builders import build_model
-from cladewise.fitting import finish_fit
-from cladewise.sampling import compile_model, sample
-from cladewise.treesample import fit_tree_sample
+from cladewise.pipeline import prepare_analysis
+from cladewise.model.build import build_model
+from cladewise.inference.fit import finish_fit
+from cladewise.inference.sampling import compile_model, sample
+from cladewise.inference.treesample import fit_tree_sample
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from cladewise.trees import FlatTree
+from cladewise.data.trees import FlatTree
 
 
 def random_tree(n_tips: int, rng: np.random.Generator, ultrametric: bool) -> FlatTree:

@@ -5,6 +5,6 @@ from __future__ import annotations
 __version__ = "0.1.0"
 
 from cladewise.errors import FitError, InputError
-from cladewise.trees import FlatTree
+from cladewise.data.trees import FlatTree
 
 __all__ = ["FlatTree", "InputError", "FitError", "__version__"]

@@ -2,6 +2,6 @@
 
 import sys
 
-from cladewise.cli import main
+from cladewise.cli.main import main
 
 sys.exit(main())

@@ -13,7 +13,7 @@ import numpy as np
 import scipy.linalg
 import scipy.stats
 
-from cladewise.trees import FlatTree, covariance
+from cladewise.data.trees import FlatTree, covariance
 
 __all__ = [
     "tip_covariance",

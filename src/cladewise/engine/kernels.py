@@ -1,6 +1,6 @@
 """Numba kernels of the linear-time Gaussian tree likelihood.
 
-Everything here works on plain arrays in the :class:`cladewise.trees.FlatTree`
+Everything here works on plain arrays in the :class:`cladewise.data.trees.FlatTree`
 order (tips ``0..N-1`` first, ``parent[i] > i``, root last) and trusts its input:
 validation happens once in :mod:`cladewise.engine.api`. All functions are
 ``@njit`` so that other numba code (the PyTensor Op's numba implementation, the

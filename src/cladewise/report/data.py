@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from cladewise.errors import InputError
-from cladewise.trees import FlatTree
+from cladewise.data.trees import FlatTree
 
 __all__ = ["FitView", "read_fit_folder"]
 
@@ -142,8 +142,8 @@ def _fill_from_spec(view: FitView) -> None:
     if not path.is_file():
         return
     try:
-        from cladewise.builders import ModelData
-        from cladewise.spec import load_data, load_spec
+        from cladewise.model.build import ModelData
+        from cladewise.config.analysis import load_data, load_spec
 
         match, _ = load_data(load_spec(path))
         data = ModelData.from_match(match)

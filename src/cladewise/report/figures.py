@@ -255,8 +255,8 @@ def data_scatter(view: FitView):
 
 def contrasts_plot(view: FitView):
     """Standardized independent contrasts with the regression through the origin."""
-    from cladewise.contrasts import independent_contrasts
-    from cladewise.trees import prune_to
+    from cladewise.evaluation.contrasts import independent_contrasts
+    from cladewise.data.trees import prune_to
 
     if view.tree is None:
         raise Skip("the tree is not stored in the fit folder")

@@ -14,7 +14,7 @@ from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 
 from cladewise.report.style import MARKERS, SEQUENTIAL, SERIES, new_figure
-from cladewise.trees import FlatTree
+from cladewise.data.trees import FlatTree
 
 __all__ = ["COMPACT_ABOVE", "tree_layout", "plot_tree"]
 

@@ -1,0 +1,32 @@
+"""The ``cladewise grid GRID.toml --out DIR`` subcommand: many fits through dask."""
+
+from __future__ import annotations
+
+import argparse
+
+from cladewise.cli.main import Command, register_command
+
+__all__: list[str] = []
+
+
+def _grid_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("grid", help="grid file (TOML) with [[fit]] and/or [[cross]] tables; "
+                                "format in the docstring of cladewise.studies.grid")
+    p.add_argument("--out", required=True, help="folder for one sub-folder per fit (finished fits are skipped)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="address of a running dask scheduler (default: a local cluster on this machine)")
+    p.add_argument("--workers", type=int, default=2, metavar="N",
+                   help="worker processes of the local cluster (default 2)")
+
+
+def _run_grid(args: argparse.Namespace) -> int:
+    from cladewise.studies.grid import format_status, run_grid
+
+    table = run_grid(args.grid, args.out, scheduler=args.scheduler, n_workers=args.workers)
+    print()
+    print(format_status(table))
+    return 1 if (table["status"] == "failed").any() else 0
+
+
+register_command(Command("grid", "run many fits (specs x tree samples) in parallel, resuming finished ones",
+                         _grid_arguments, _run_grid))

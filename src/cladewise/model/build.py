@@ -1,0 +1,692 @@
+"""PyMC model builders: an analysis specification becomes a PyMC model.
+
+The specification (:class:`ModelSpec`) is plain data; :func:`build_model` turns it and
+the matched data (:class:`ModelData`) into a PyMC model whose likelihood is the
+tree likelihood engine (or, for small checks, a dense multivariate normal).
+
+Model kinds
+-----------
+``correlated``
+    k traits evolve by multivariate Brownian motion (or another evolution model) with
+    rate matrix ``R = diag(sigma) Omega diag(sigma)``, LKJ prior on ``Omega``
+    (Lewandowski, Kurowicka & Joe 2009). Reported: evolutionary correlations
+    ``evo_corr``, rates ``evo_rate`` (the diagonal of R) and structural slopes
+    ``evo_slope[y, x] = R_yx / R_xx`` (Ives, Midford & Garland 2007, Syst. Biol.
+    56:252-270), which stay unbiased when x carries measurement error.
+``independent``
+    The same with a diagonal R: the null of no evolutionary correlation.
+``regression``
+    Phylogenetic regression from a formula (Wilkinson notation, parsed by
+    ``formulaic``): the response given the predictors has residuals that evolve on the
+    tree (Grafen 1989; PGLS). Predictors are taken as measured without error; use the
+    ``correlated`` model's structural slope when they are not.
+
+Optional for every kind: a species-level (non-phylogenetic) covariance ``E`` beside
+``R`` (``species_covariance = true``), reported as ``species_corr`` and as the
+phylogenetic share of variance per trait, ``phylo_share = R_jj t / (R_jj t + E_jj)``
+with t the mean root-to-tip distance of the (transformed) tree.
+
+Measurement error: ``none``; ``se`` (known standard errors from the table, variance
+``se^2``); ``specimens`` (a within-species variance per species and trait, partially
+pooled across species on the log scale; each species' sample variance s^2 from n >= 2
+specimens adds the likelihood term ``(n-1) s^2 / sigma_w^2 ~ chi^2(n-1)``, and the
+error variance of the species mean is ``sigma_w^2 / n``).
+
+Default priors are weakly informative and scaled to the data (see :data:`PRIOR_KEYS`
+and :func:`build_model`); every prior used is listed in ``BuiltModel.priors``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, asdict
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pymc as pm
+import pytensor
+import pytensor.tensor as pt
+
+from cladewise.errors import InputError
+from cladewise.model.evolution import (
+    MODELS,
+    check_model_name,
+    lengths_from_arrays,
+    model_warnings,
+    tree_arrays,
+)
+from cladewise.data.trees import FlatTree
+
+__all__ = [
+    "ModelData",
+    "ModelSpec",
+    "PriorInfo",
+    "BuiltModel",
+    "build_model",
+    "tree_data_values",
+    "KINDS",
+    "MEASUREMENT_ERROR",
+    "PRIOR_KEYS",
+]
+
+KINDS = ("correlated", "independent", "regression")
+MEASUREMENT_ERROR = ("none", "se", "specimens")
+
+#: prior overrides accepted in ``[model.priors]`` / ``ModelSpec.priors``
+PRIOR_KEYS: dict[str, str] = {
+    "rate_scale": "multiplier on the data-scaled half-normal scale of each sqrt-rate (default 1)",
+    "root_sd": "sd of the normal prior on root means, in trait sd units (default 5)",
+    "lkj_eta": "LKJ shape of the evolutionary correlation matrix (default 1: uniform)",
+    "coef_scale": "sd of normal priors on regression slopes in units sd(y)/sd(x) (default 2.5), or 'flat'",
+    "lambda_beta": "[a, b] of a Beta prior on Pagel's lambda (default [1, 1]: uniform)",
+    "alpha_scale": "half-normal sd of OU alpha, in units of 1/tree height (default 3)",
+    "kappa_sd": "sd of a log-normal prior on kappa centred on 1 (default 0.5)",
+    "delta_sd": "sd of a log-normal prior on delta centred on 1 (default 0.5)",
+    "rate_change_scale": "sd of the normal prior on the early-burst rate change, per tree height (default 3)",
+    "species_scale": "multiplier on the half-normal scale of species-level sds (default 1)",
+}
+
+
+# --------------------------------------------------------------------------- data
+@dataclass
+class ModelData:
+    """Matched, validated data ready for a model (species order = tree tip order).
+
+    Parameters
+    ----------
+    tree : FlatTree
+        Tree whose tips are exactly ``species`` in that order.
+    values : DataFrame
+        Species means, one row per species (index = species), NaN where missing.
+    se : DataFrame, optional
+        Standard errors of the means (same shape), NaN where unknown.
+    n : DataFrame, optional
+        Number of specimens behind each mean.
+    sample_var : DataFrame, optional
+        Within-species sample variance (NaN where fewer than 2 specimens).
+    notes : list of str
+        Plain-language notes gathered on the way (dropped species, imputed errors).
+    """
+
+    tree: FlatTree
+    values: pd.DataFrame
+    se: pd.DataFrame | None = None
+    n: pd.DataFrame | None = None
+    sample_var: pd.DataFrame | None = None
+    notes: list[str] = field(default_factory=list)
+
+    def __post_init__(self) -> None:
+        if list(self.values.index) != list(self.tree.tip_names):
+            raise ValueError("ModelData: rows must follow the tree's tip order")
+
+    @property
+    def species(self) -> list[str]:
+        return list(self.values.index)
+
+    @classmethod
+    def from_match(cls, match: Any) -> "ModelData":
+        """Build from the result of :func:`cladewise.config.analysis.load_data`."""
+        td = match.traits
+        species = list(td.species)
+        cols = list(td.traits)
+
+        def frame(arr: Any) -> pd.DataFrame | None:
+            if arr is None:
+                return None
+            return pd.DataFrame(np.asarray(arr, dtype=float), index=species, columns=cols)
+
+        return cls(
+            tree=match.tree,
+            values=frame(td.mean),
+            se=frame(getattr(td, "se", None)),
+            n=frame(getattr(td, "n", None)),
+            sample_var=frame(getattr(td, "within_var", None)),
+            notes=list(getattr(match, "notes", []) or []),
+        )
+
+
+# --------------------------------------------------------------------------- spec
+@dataclass
+class ModelSpec:
+    """What to fit: plain data, validated by :meth:`from_dict`."""
+
+    kind: str = "correlated"
+    traits: list[str] = field(default_factory=list)
+    formula: str | None = None
+    evolution: str = "bm"
+    ou_root: str = "fixed"
+    measurement_error: str = "none"
+    species_covariance: bool = False
+    priors: dict[str, Any] = field(default_factory=dict)
+    fixed: dict[str, float] = field(default_factory=dict)
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "ModelSpec":
+        """Validate a ``[model]`` table (unknown keys and values are errors)."""
+        known = {f for f in cls.__dataclass_fields__}
+        unknown = sorted(set(d) - known)
+        if unknown:
+            import difflib
+
+            hints = [
+                f"{u!r}" + (f" (did you mean {m[0]!r}?)" if (m := difflib.get_close_matches(u, known, 1)) else "")
+                for u in unknown
+            ]
+            raise InputError(
+                f"unknown key(s) in [model]: {', '.join(hints)}; known keys: {', '.join(sorted(known))}"
+            )
+        spec = cls(**d)
+        spec.validate()
+        return spec
+
+    def validate(self) -> None:
+        if self.kind not in KINDS:
+            raise InputError(f"[model] kind = {self.kind!r} is not known; choose one of {', '.join(KINDS)}")
+        self.evolution = check_model_name(self.evolution)
+        if self.measurement_error not in MEASUREMENT_ERROR:
+            raise InputError(
+                f"[model] measurement_error = {self.measurement_error!r} is not known; "
+                f"choose one of {', '.join(MEASUREMENT_ERROR)}"
+            )
+        if self.ou_root not in ("fixed", "stationary"):
+            raise InputError("[model] ou_root must be 'fixed' or 'stationary'")
+        if self.kind == "regression":
+            if not self.formula or "~" not in str(self.formula):
+                raise InputError(
+                    "a regression needs a formula such as formula = \"prey_size ~ head_width + temperature\""
+                )
+        else:
+            if self.formula:
+                raise InputError(f"a formula is only used by kind = 'regression', not {self.kind!r}")
+            if not isinstance(self.traits, (list, tuple)) or len(self.traits) < (2 if self.kind == "correlated" else 1):
+                raise InputError(
+                    f"kind = {self.kind!r} needs traits = [...] with at least "
+                    f"{2 if self.kind == 'correlated' else 1} trait names"
+                )
+            if len(set(self.traits)) != len(self.traits):
+                raise InputError("[model] traits lists a trait twice")
+        allowed = {"lambda": "lambda", "lam": "lambda", "alpha": "alpha", "kappa": "kappa",
+                   "delta": "delta", "rate_change": "rate_change"}
+        for key, value in self.fixed.items():
+            if allowed.get(key) != _PUBLIC_NAME.get(MODELS[self.evolution][0] if MODELS[self.evolution] else ""):
+                raise InputError(
+                    f"[model.fixed] {key!r} is not a parameter of the {self.evolution!r} evolution model"
+                )
+            if not isinstance(value, (int, float)):
+                raise InputError(f"[model.fixed] {key} must be a number")
+        bad = sorted(set(self.priors) - set(PRIOR_KEYS))
+        if bad:
+            raise InputError(
+                f"unknown prior setting(s) {bad}; known: " + ", ".join(sorted(PRIOR_KEYS))
+            )
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+@dataclass
+class PriorInfo:
+    """One prior, in words, for the printed results."""
+
+    parameter: str
+    distribution: str
+    reason: str
+
+
+@dataclass
+class BuiltModel:
+    """A PyMC model plus everything needed to summarise and cross-validate it."""
+
+    model: pm.Model
+    spec: ModelSpec
+    data: ModelData
+    traits: list[str]
+    y: np.ndarray  # (N, k) observed values, NaN where unobserved
+    observed: np.ndarray  # (N, k) bool
+    priors: list[PriorInfo]
+    summary_vars: list[str]
+    engine_inputs: dict[str, Any]  # tensors: lengths, y, R, E, err_var, mu
+    tree_data: dict[str, str]  # tree array name -> pm.Data name
+    likelihood: str
+    notes: list[str] = field(default_factory=list)
+    predictors: list[str] = field(default_factory=list)
+    design: np.ndarray | None = None  # regression design matrix (N, p)
+
+    @property
+    def species(self) -> list[str]:
+        return self.data.species
+
+    @property
+    def loglik_kind(self) -> str:
+        """'joint' (all traits of a species) or 'conditional' (response given predictors)."""
+        return "conditional" if self.spec.kind == "regression" else "joint"
+
+    def engine_function(self):
+        """Compiled function: free random variables -> engine inputs (numpy).
+
+        Used to evaluate per-draw quantities (pointwise log-likelihood, predictive
+        draws) after sampling without storing large arrays in the posterior.
+        """
+        names = ["lengths", "y", "R", "E", "err_var", "mu"]
+        outs = [pt.as_tensor_variable(self.engine_inputs[k]) for k in names]
+        fn = pytensor.function(self.model.free_RVs, outs, on_unused_input="ignore")
+        rv_names = [rv.name for rv in self.model.free_RVs]
+
+        def call(point: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+            vals = fn(*[point[n] for n in rv_names])
+            return dict(zip(names, vals))
+
+        return call
+
+
+def tree_data_values(built: "BuiltModel", tree: FlatTree) -> dict[str, np.ndarray]:
+    """Values of a model's tree ``pm.Data`` for another tree with the same species.
+
+    Pass the result as ``tree_values`` to :func:`cladewise.inference.sampling.sample` (or to
+    ``nutpie``'s ``with_data``) to fit that tree without recompiling.
+    """
+    if list(tree.tip_names) != built.species:
+        raise InputError("the tree's tips must be the model's species in the same order (use order_tips)")
+    if tree.n_nodes != built.data.tree.n_nodes:
+        raise InputError(
+            "this tree has a different number of nodes than the compiled model's tree "
+            f"({tree.n_nodes} vs {built.data.tree.n_nodes}); polytomies differ, so it needs its own compile"
+        )
+    values = {built.tree_data[name]: arr for name, arr in tree_arrays(tree).items()}
+    values[built.tree_data["parent"]] = tree.parent
+    values[built.tree_data["tip_weights"]] = _mean_tip_weights(tree)
+    return values
+
+
+# --------------------------------------------------------------------------- helpers
+def _mean_tip_weights(tree: FlatTree) -> np.ndarray:
+    """w with w . lengths = mean root-to-tip distance (root edge included)."""
+    below = np.zeros(tree.n_nodes)
+    below[: tree.n_tips] = 1.0
+    for i in range(tree.n_nodes - 1):
+        below[tree.parent[i]] += below[i]
+    return below / tree.n_tips
+
+
+def _path_matrix(tree: FlatTree) -> np.ndarray:
+    """Tips x nodes 0/1 matrix of the branches on each root-to-tip path (dense check only)."""
+    Z = np.zeros((tree.n_tips, tree.n_nodes))
+    for i in range(tree.n_tips):
+        v = i
+        while v != -1:
+            Z[i, v] = 1.0
+            v = tree.parent[v]
+    return Z
+
+
+def _likelihood(tree: FlatTree, parent, lengths, y, observed, R, E, err_var, mu, likelihood: str):
+    if likelihood == "tree":
+        from cladewise.engine import tree_loglik
+
+        return tree_loglik(pt.cast(parent, "int64"), lengths, y, observed, R, E, err_var, mu)
+    if likelihood != "dense":
+        raise InputError("likelihood must be 'tree' (fast) or 'dense' (reference)")
+    # Dense multivariate normal: O(N^3), only for checks and benchmarks.
+    Z = _path_matrix(tree)
+    C = pt.dot(Z * lengths[None, :], Z.T)
+    n, k = observed.shape
+    full = pt.linalg.kron(C, R) + pt.linalg.kron(pt.eye(n), E) + pt.diag(pt.flatten(err_var))
+    idx = np.flatnonzero(observed.ravel())
+    cov = full[idx][:, idx]
+    mean = pt.flatten(pt.outer(pt.ones(n), mu))[idx]
+    value = pt.flatten(y)[idx]
+    return pm.logp(pm.MvNormal.dist(mu=mean, cov=cov), value)
+
+
+def _scale_facts(values: np.ndarray) -> tuple[float, float]:
+    v = values[np.isfinite(values)]
+    if v.size < 2:
+        raise InputError("a trait needs at least two observed species")
+    sd = float(np.std(v, ddof=1))
+    if not sd > 0:
+        raise InputError("a trait has no variance across species (all values equal); it cannot be modelled")
+    return float(np.mean(v)), sd
+
+
+# --------------------------------------------------------------------------- build
+def build_model(
+    data: ModelData, spec: ModelSpec, likelihood: str = "tree"
+) -> BuiltModel:
+    """Turn data and a specification into a PyMC model.
+
+    Parameters
+    ----------
+    data : ModelData
+        Matched data; the tree's tips are the species.
+    spec : ModelSpec
+        What to fit.
+    likelihood : {"tree", "dense"}
+        ``"tree"``: the linear-time engine (default). ``"dense"``: a dense
+        multivariate normal, for checks on small trees and benchmarks.
+
+    Returns
+    -------
+    BuiltModel
+    """
+    spec.validate()
+    tree = data.tree
+    if tree.n_tips < 3:
+        raise InputError(
+            f"only {tree.n_tips} species matched between tree and table; a comparative "
+            "analysis needs at least 3 (and many more for useful intervals)"
+        )
+    notes = list(data.notes) + model_warnings(tree, spec.evolution)
+    pri = dict(spec.priors)
+    priors: list[PriorInfo] = []
+    weights = _mean_tip_weights(tree)
+    tbar = float(weights @ tree.length)
+    height = float(tree.tip_heights().max())
+    if not tbar > 0:
+        raise InputError("the tree has zero height: every branch length is 0")
+
+    if spec.kind == "regression":
+        y, observed, traits, X, predictors, err_cols = _regression_data(data, spec)
+    else:
+        missing = [t for t in spec.traits if t not in data.values.columns]
+        if missing:
+            raise InputError(
+                f"trait(s) {missing} are not columns of the trait table; available: "
+                + ", ".join(map(str, data.values.columns))
+            )
+        traits = list(spec.traits)
+        y = data.values[traits].to_numpy(dtype=float)
+        observed = np.isfinite(y)
+        X, predictors, err_cols = None, [], traits
+    n, k = y.shape
+    for j, t in enumerate(traits):
+        if observed[:, j].sum() < 2:
+            raise InputError(f"trait {t!r} has fewer than two observed species")
+
+    coords = {"species": data.species, "trait": traits, "trait_": traits}
+    if predictors:
+        coords["term"] = predictors
+    with pm.Model(coords=coords) as model:
+        arrays = tree_arrays(tree)
+        tree_data = {name: f"tree_{name}" for name in arrays}
+        tensors = {name: pm.Data(tree_data[name], arr) for name, arr in arrays.items()}
+        parent = pm.Data("tree_parent", tree.parent)
+        tree_data["parent"] = "tree_parent"
+        w_data = pm.Data("tree_tip_weights", weights)
+        tree_data["tip_weights"] = "tree_tip_weights"
+
+        # --- evolution model parameters -> branch lengths
+        evo = _evolution_parameters(spec, pri, height, priors)
+        lengths = lengths_from_arrays(tensors, spec.evolution, ou_root=spec.ou_root, **evo)
+        t_mean = pt.dot(w_data, lengths)
+
+        # --- rates and the response/trait means
+        if spec.kind == "regression":
+            ymean, ysd = _scale_facts(y[observed[:, 0], 0])
+            R, mu, y_t = _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors)
+        else:
+            R, mu = _rate_terms(spec, y, observed, traits, tbar, pri, priors)
+            y_t = pm.Data("obs_values", np.where(observed, y, 0.0))
+
+        # --- species-level covariance
+        if spec.species_covariance:
+            E = _species_terms(y, observed, traits, pri, priors)
+            share = pt.diag(R) * t_mean / (pt.diag(R) * t_mean + pt.diag(E))
+            pm.Deterministic("phylo_share", share, dims="trait")
+        else:
+            E = pt.zeros((k, k))
+
+        # --- measurement error
+        err_var = _measurement_error(spec, data, err_cols, observed, priors, notes)
+
+        obs_t = observed if likelihood == "dense" else pm.Data("obs_mask", observed.astype(np.int8))
+        pm.Potential(
+            "tree_loglik",
+            _likelihood(tree, parent, lengths, y_t, obs_t, R, E, err_var, mu, likelihood),
+        )
+
+    summary_vars = [v for v in (
+        "evo_corr", "evo_slope", "evo_rate", "coef", "species_corr", "phylo_share",
+        "lambda", "alpha", "half_life", "kappa", "delta", "rate_change", "root_mean",
+        "within_sd",
+    ) if v in model.named_vars]
+    return BuiltModel(
+        model=model, spec=spec, data=data, traits=traits,
+        y=np.where(observed, y, np.nan), observed=observed, priors=priors,
+        summary_vars=summary_vars,
+        engine_inputs={"lengths": lengths, "y": y_t, "R": R, "E": E, "err_var": err_var, "mu": mu},
+        tree_data=tree_data, likelihood=likelihood, notes=notes,
+        predictors=predictors, design=X,
+    )
+
+
+_PUBLIC_NAME = {"lam": "lambda", "alpha": "alpha", "kappa": "kappa", "delta": "delta",
+                "rate_change": "rate_change"}
+
+
+def _evolution_parameters(spec: ModelSpec, pri: dict, height: float, priors: list[PriorInfo]) -> dict:
+    model = spec.evolution
+    if model == "bm":
+        return {}
+    if spec.fixed:
+        (key, value), = spec.fixed.items()
+        inner = MODELS[model][0]
+        priors.append(PriorInfo(_PUBLIC_NAME[inner], f"fixed at {value:g}", "set in the spec"))
+        # data, not a constant: one compiled model can be re-run at other fixed values
+        fixed = pm.Data(f"fixed_{_PUBLIC_NAME[inner]}", np.asarray(float(value)))
+        return {inner: fixed}
+    if model == "lambda":
+        a, b = pri.get("lambda_beta", [1.0, 1.0])
+        lam = pm.Beta("lambda", alpha=float(a), beta=float(b))
+        priors.append(PriorInfo("lambda", f"Beta({a:g}, {b:g})", "Pagel's lambda lies in [0, 1]; uniform by default"))
+        return {"lam": lam}
+    if model == "ou":
+        s = float(pri.get("alpha_scale", 3.0)) / height
+        alpha = pm.HalfNormal("alpha", sigma=s)
+        pm.Deterministic("half_life", math.log(2.0) / alpha)
+        priors.append(PriorInfo("alpha", f"HalfNormal({s:.4g})",
+                                "scale 3 / tree height: half-lives shorter than ~0.1 tree heights are unlikely a priori"))
+        return {"alpha": alpha}
+    if model == "kappa":
+        s = float(pri.get("kappa_sd", 0.5))
+        priors.append(PriorInfo("kappa", f"LogNormal(0, {s:g})", "centred on kappa = 1 (Brownian motion)"))
+        return {"kappa": pm.LogNormal("kappa", mu=0.0, sigma=s)}
+    if model == "delta":
+        s = float(pri.get("delta_sd", 0.5))
+        priors.append(PriorInfo("delta", f"LogNormal(0, {s:g})", "centred on delta = 1 (Brownian motion)"))
+        return {"delta": pm.LogNormal("delta", mu=0.0, sigma=s)}
+    if model == "early_burst":
+        s = float(pri.get("rate_change_scale", 3.0)) / height
+        priors.append(PriorInfo("rate_change", f"Normal(0, {s:.4g})",
+                                "scale 3 / tree height: the rate may change about e^3-fold over the tree"))
+        return {"rate_change": pm.Normal("rate_change", 0.0, s)}
+    raise AssertionError(model)  # pragma: no cover
+
+
+def _rate_terms(spec, y, observed, traits, tbar, pri, priors):
+    k = len(traits)
+    means, sds = zip(*(_scale_facts(y[observed[:, j], j]) for j in range(k)))
+    means, sds = np.array(means), np.array(sds)
+    # BM over a mean path length t gives variance R_jj t, so sqrt-rates near sd/sqrt(t).
+    scales = 2.0 * float(pri.get("rate_scale", 1.0)) * sds / math.sqrt(tbar)
+    root_sd = float(pri.get("root_sd", 5.0)) * sds
+    mu = pm.Normal("root_mean", mu=means, sigma=root_sd, dims="trait")
+    priors.append(PriorInfo("root_mean", "Normal(trait mean, " + ", ".join(f"{s:.3g}" for s in root_sd) + ")",
+                            "5 trait sds around the observed mean"))
+    scale_txt = ", ".join(f"{s:.3g}" for s in scales)
+    if spec.kind == "independent":
+        sigma = pm.HalfNormal("evo_sd", sigma=scales, dims="trait")
+        R = pt.diag(sigma**2)
+        priors.append(PriorInfo("evo_sd (sqrt of rate)", f"HalfNormal({scale_txt})",
+                                "2 x trait sd / sqrt(mean root-to-tip length)"))
+    else:
+        eta = float(pri.get("lkj_eta", 1.0))
+        chol, corr, sigma = pm.LKJCholeskyCov(
+            "rate_chol", n=k, eta=eta, sd_dist=pm.HalfNormal.dist(sigma=scales, shape=k), compute_corr=True
+        )
+        R = pt.dot(chol, chol.T)
+        pm.Deterministic("evo_corr", corr, dims=("trait", "trait_"))
+        # slope of the row trait on the column trait: R_yx / R_xx
+        pm.Deterministic("evo_slope", R / pt.diag(R)[None, :], dims=("trait", "trait_"))
+        priors.append(PriorInfo("evolutionary correlation matrix", f"LKJ(eta={eta:g})",
+                                "eta = 1 is uniform over correlation matrices"))
+        priors.append(PriorInfo("sqrt of each rate", f"HalfNormal({scale_txt})",
+                                "2 x trait sd / sqrt(mean root-to-tip length)"))
+    pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
+    return R, mu
+
+
+def _species_terms(y, observed, traits, pri, priors):
+    k = len(traits)
+    sds = np.array([_scale_facts(y[observed[:, j], j])[1] for j in range(k)])
+    scales = float(pri.get("species_scale", 1.0)) * sds
+    if k == 1:
+        s = pm.HalfNormal("species_sd", sigma=scales, dims="trait")
+        E = pt.diag(s**2)
+    else:
+        cholE, corrE, _ = pm.LKJCholeskyCov(
+            "species_chol", n=k, eta=2.0, sd_dist=pm.HalfNormal.dist(sigma=scales, shape=k), compute_corr=True
+        )
+        E = pt.dot(cholE, cholE.T)
+        pm.Deterministic("species_corr", corrE, dims=("trait", "trait_"))
+        priors.append(PriorInfo("species-level correlation matrix", "LKJ(eta=2)", "mildly favours small residual correlations"))
+    priors.append(PriorInfo("species-level sds", "HalfNormal(" + ", ".join(f"{s:.3g}" for s in scales) + ")",
+                            "one trait sd"))
+    return E
+
+
+def _regression_data(data: ModelData, spec: ModelSpec):
+    from formulaic import Formula
+    from formulaic.errors import FormulaicError
+
+    try:
+        f = Formula(spec.formula)
+        needed = sorted(f.required_variables)
+    except FormulaicError as e:
+        raise InputError(f"could not read the formula {spec.formula!r}: {e}") from None
+    absent = [v for v in needed if v not in data.values.columns]
+    if absent:
+        raise InputError(
+            f"the formula {spec.formula!r} names {absent}, which are not columns of the trait table; "
+            "available: " + ", ".join(map(str, data.values.columns))
+        )
+    from formulaic import model_matrix
+
+    try:
+        mm = model_matrix(spec.formula, data.values, na_action="ignore")
+    except FormulaicError as e:
+        raise InputError(f"could not build the design from {spec.formula!r}: {e}") from None
+    if mm.lhs.shape[1] != 1:
+        raise InputError("the formula must have exactly one response on the left of '~'")
+    response = str(mm.lhs.columns[0])
+    yv = mm.lhs.to_numpy(dtype=float)
+    X = mm.rhs.to_numpy(dtype=float)
+    predictors = [str(c) for c in mm.rhs.columns]
+    ok_x = np.all(np.isfinite(X), axis=1)
+    observed = np.isfinite(yv) & ok_x[:, None]
+    n_drop = int((np.isfinite(yv[:, 0]) & ~ok_x).sum())
+    if n_drop:
+        data.notes.append(f"{n_drop} species with a response but a missing predictor do not inform the regression")
+    X = np.where(np.isfinite(X), X, 0.0)
+    for j, p in enumerate(predictors):
+        col = X[observed[:, 0], j]
+        if p != "Intercept" and col.size and np.ptp(col) == 0:
+            raise InputError(f"predictor {p!r} has no variance among the species used; drop it from the formula")
+    err_col = response if response in data.values.columns else None
+    return yv, observed, [response], X, predictors, [err_col]
+
+
+def _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors):
+    coef_scale = pri.get("coef_scale", 2.5)
+    obs = observed[:, 0]
+    p = len(predictors)
+    if coef_scale == "flat":
+        beta = pm.Flat("coef", dims="term")
+        priors.append(PriorInfo("coef", "flat (improper)", "requested in the spec"))
+    else:
+        loc = np.zeros(p)
+        sd = np.zeros(p)
+        for j, name in enumerate(predictors):
+            if name == "Intercept":
+                loc[j], sd[j] = ymean, 5.0 * ysd
+            else:
+                xsd = float(np.std(X[obs, j], ddof=1))
+                sd[j] = float(coef_scale) * ysd / xsd
+        beta = pm.Normal("coef", mu=loc, sigma=sd, dims="term")
+        priors.append(PriorInfo("coef", "Normal(0, " + ", ".join(f"{s:.3g}" for s in sd) + ") (intercept centred on mean y)",
+                                f"{coef_scale} x sd(y)/sd(x) per slope (common practice for weakly informative priors)"))
+    scale = 2.0 * float(pri.get("rate_scale", 1.0)) * ysd / math.sqrt(tbar)
+    sigma = pm.HalfNormal("evo_sd", sigma=scale)
+    priors.append(PriorInfo("evo_sd (sqrt of residual rate)", f"HalfNormal({scale:.3g})",
+                            "2 x sd(y) / sqrt(mean root-to-tip length)"))
+    R = pt.reshape(sigma**2, (1, 1))
+    pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
+    y_d = pm.Data("obs_values", np.where(observed, y, 0.0))
+    X_d = pm.Data("design", X)
+    resid = y_d - pt.dot(X_d, beta)[:, None]
+    resid = pt.where(observed, resid, 0.0)
+    return R, pt.zeros(1), resid
+
+
+def _measurement_error(spec, data, cols, observed, priors, notes):
+    n, k = observed.shape
+    mode = spec.measurement_error
+    if mode == "none":
+        return pt.zeros((n, k))
+    if mode == "se":
+        if data.se is None:
+            raise InputError(
+                "measurement_error = 'se' needs standard errors: add <trait>_se columns (or "
+                "<trait>_n and <trait>_sd), or use per-specimen rows with measurement_error = 'specimens'"
+            )
+        out = np.zeros((n, k))
+        for j, c in enumerate(cols):
+            if c is None or c not in data.se.columns:
+                raise InputError(f"no standard errors for {c!r}")
+            se = data.se[c].to_numpy(dtype=float)
+            have = np.isfinite(se) & observed[:, j]
+            lack = observed[:, j] & ~np.isfinite(se)
+            if not have.any():
+                raise InputError(f"no species has a standard error for {c!r}")
+            if lack.any():
+                fill = float(np.median(se[have]))
+                notes.append(
+                    f"{int(lack.sum())} species had no standard error for {c!r}; the median ({fill:.3g}) was used"
+                )
+                se = np.where(lack, fill, se)
+            out[:, j] = np.where(observed[:, j], se**2, 0.0)
+        priors.append(PriorInfo("measurement error", "known: squared standard errors from the table", "as given"))
+        return pm.Data("obs_err_var", out)
+    # specimens: partially pooled within-species variances
+    if data.n is None or data.sample_var is None:
+        raise InputError(
+            "measurement_error = 'specimens' needs a per-specimen table: set specimens = true in [data]"
+        )
+    nn = np.zeros((n, k))
+    s2 = np.full((n, k), np.nan)
+    for j, c in enumerate(cols):
+        if c is None or c not in data.n.columns:
+            raise InputError(f"no specimen counts for {c!r}")
+        nn[:, j] = np.nan_to_num(data.n[c].to_numpy(dtype=float))
+        s2[:, j] = data.sample_var[c].to_numpy(dtype=float)
+    # a zero sample variance (a value repeated for every specimen) carries no information
+    has_var = (nn >= 2) & np.isfinite(s2) & (np.nan_to_num(s2) > 0) & observed
+    centre = np.array([
+        np.log(np.median(s2[has_var[:, j], j])) if has_var[:, j].any() else 0.0 for j in range(k)
+    ])
+    for j, c in enumerate(cols):
+        if not has_var[:, j].any():
+            raise InputError(f"no species has two or more specimens of {c!r}: within-species variance cannot be estimated")
+    log_mean = pm.Normal("within_log_var_mean", mu=centre, sigma=2.0, dims="trait")
+    log_sd = pm.HalfNormal("within_log_var_sd", sigma=1.0, dims="trait")
+    z = pm.Normal("within_z", 0.0, 1.0, dims=("species", "trait"))
+    var_w = pt.exp(log_mean[None, :] + log_sd[None, :] * z)
+    pm.Deterministic("within_sd", pt.sqrt(pt.exp(log_mean)), dims="trait")
+    idx = np.nonzero(has_var)
+    dof = nn[idx] - 1.0
+    # (n-1) s^2 / sigma^2 ~ chi^2(n-1)  <=>  s^2 ~ Gamma((n-1)/2, rate=(n-1)/(2 sigma^2))
+    pm.Gamma("within_sample_var", alpha=dof / 2.0, beta=dof / (2.0 * var_w[idx]), observed=s2[idx])
+    priors.append(PriorInfo("within-species log variance", "Normal(log median s^2, 2) mean, HalfNormal(1) spread",
+                            "partial pooling across species; species with one specimen borrow strength"))
+    nsafe = np.where(observed & (nn > 0), nn, 1.0)
+    return pt.where(observed, var_w / nsafe, 0.0)

@@ -1,0 +1,233 @@
+"""Models of evolution as branch-length transforms.
+
+Every model in the family is Brownian motion on a tree whose branch lengths have
+been rewritten by the model's parameters, so the likelihood engine only ever sees a
+vector of lengths. The transforms work on numpy arrays and on PyTensor tensors (the
+same code, so gradients reach the parameters when sampling).
+
+==============  ============  ====================================================
+name            parameter     effect on the tree
+==============  ============  ====================================================
+``bm``          (none)        lengths unchanged (Brownian motion)
+``lambda``      ``lam``       internal branches (and root edge) times lambda; tip
+                              branches stretched so root-to-tip distances stay
+                              (Pagel 1999, Nature 401:877-884). Exact on any tree.
+``kappa``       ``kappa``     every branch raised to the power kappa (Pagel 1999).
+``delta``       ``delta``     node heights h become T (h / T)^delta, T the tree
+                              height, so the tree height is kept (Pagel 1999).
+``early_burst`` ``rate_change`` rate at height s is exp(rate_change * s); negative
+                              values slow evolution through time (Harmon et al.
+                              2010, Evolution 64:2385-2396). Exact on any tree.
+``ou``          ``alpha``     Ornstein-Uhlenbeck pull towards one optimum (Hansen
+                              1997, Evolution 51:1341-1351). Exact on ultrametric
+                              trees only; see :func:`transformed_lengths`.
+==============  ============  ====================================================
+
+Ornstein-Uhlenbeck root treatment. With ``ou_root="fixed"`` (default) the root
+value equals the optimum, which is the root mean ``mu`` of the model; the tip
+covariance is ``R/(2 alpha) exp(-2 alpha (T - s_ij)) (1 - exp(-2 alpha s_ij))``
+and alpha -> 0 gives Brownian motion back. With ``ou_root="stationary"`` the root
+value is drawn from the stationary distribution, which adds a root edge of length
+``exp(-2 alpha T) / (2 alpha)``; the covariance becomes
+``R/(2 alpha) exp(-2 alpha (T - s_ij))`` (Hansen 1997; Butler & King 2004,
+Am. Nat. 164:683-695). On a non-ultrametric tree the OU covariance is not a
+Brownian motion on any tree; cladewise then measures time from the tallest tip,
+which is an approximation, and :func:`model_warnings` says so.
+"""
+
+from __future__ import annotations
+
+from types import ModuleType
+from typing import Any
+
+import numpy as np
+
+from cladewise.errors import InputError
+from cladewise.data.trees import FlatTree
+
+__all__ = [
+    "MODELS",
+    "TREE_ARRAY_NAMES",
+    "tree_arrays",
+    "lengths_from_arrays",
+    "transformed_lengths",
+    "model_warnings",
+    "check_model_name",
+]
+
+#: model name -> names of its parameters
+MODELS: dict[str, tuple[str, ...]] = {
+    "bm": (),
+    "lambda": ("lam",),
+    "kappa": ("kappa",),
+    "delta": ("delta",),
+    "early_burst": ("rate_change",),
+    "ou": ("alpha",),
+}
+
+_EXACT_ONLY_ULTRAMETRIC = {"ou"}
+
+
+def check_model_name(name: str) -> str:
+    """Return the canonical model name or raise an :class:`InputError`."""
+    key = str(name).strip().lower().replace("-", "_").replace(" ", "_")
+    aliases = {"brownian": "bm", "brownian_motion": "bm", "pagel_lambda": "lambda",
+               "eb": "early_burst", "ornstein_uhlenbeck": "ou"}
+    key = aliases.get(key, key)
+    if key not in MODELS:
+        raise InputError(
+            f"unknown evolution model {name!r}; choose one of: {', '.join(MODELS)}"
+        )
+    return key
+
+
+def model_warnings(tree: FlatTree, model: str, rtol: float = 1e-6) -> list[str]:
+    """Plain-language warnings about using ``model`` on ``tree``."""
+    model = check_model_name(model)
+    out = []
+    if model in _EXACT_ONLY_ULTRAMETRIC and not tree.is_ultrametric(rtol):
+        out.append(
+            f"the {model!r} model is exact only on ultrametric trees; this tree's "
+            "root-to-tip distances differ, so time is measured from the tallest tip "
+            "(an approximation). Consider an ultrametric (time-calibrated) tree."
+        )
+    return out
+
+
+def _backend(*values: Any) -> ModuleType:
+    """numpy unless a value is a PyTensor variable."""
+    for v in values:
+        if type(v).__module__.startswith("pytensor"):
+            import pytensor.tensor as pt
+
+            return pt
+    return np
+
+
+#: names of the per-tree arrays a transform needs (all data, never parameters)
+TREE_ARRAY_NAMES = ("length", "h_start", "h_end", "is_tip", "is_root", "height")
+
+
+def tree_arrays(tree: FlatTree) -> dict[str, np.ndarray]:
+    """The per-node arrays the transforms read, as plain numpy arrays.
+
+    Kept separate from the tree so a compiled model can receive another tree of the
+    same size as data (``pm.Data``) without recompiling.
+
+    Returns
+    -------
+    dict
+        ``length`` (branch lengths, last entry the root edge), ``h_start`` and
+        ``h_end`` (distance from the root to both ends of each branch), ``is_tip``
+        and ``is_root`` (0/1 floats), ``height`` (tallest root-to-tip distance, 0-d).
+    """
+    h_end = tree.heights()
+    parent = tree.parent.copy()
+    parent[-1] = tree.root
+    h_start = h_end[parent]
+    h_start[-1] = 0.0
+    is_tip = np.zeros(tree.n_nodes)
+    is_tip[: tree.n_tips] = 1.0
+    is_root = np.zeros(tree.n_nodes)
+    is_root[-1] = 1.0
+    height = np.asarray(h_end[: tree.n_tips].max() if tree.n_tips else 0.0)
+    return {"length": tree.length.copy(), "h_start": h_start, "h_end": h_end,
+            "is_tip": is_tip, "is_root": is_root, "height": height}
+
+
+def _check_params(model: str, params: dict[str, Any]) -> None:
+    missing = [p for p in MODELS[model] if p not in params]
+    extra = [p for p in params if p not in MODELS[model]]
+    if missing or extra:
+        raise InputError(
+            f"the {model!r} model takes parameters {MODELS[model] or '(none)'}; "
+            f"missing {missing}, unexpected {extra}"
+        )
+
+
+def transformed_lengths(
+    tree: FlatTree, model: str, ou_root: str = "fixed", **params: Any
+) -> Any:
+    """Branch lengths of ``tree`` rewritten by an evolution model.
+
+    Parameters
+    ----------
+    tree : FlatTree
+        The tree (its lengths and heights are data).
+    model : str
+        One of :data:`MODELS`.
+    ou_root : {"fixed", "stationary"}
+        Root treatment of the Ornstein-Uhlenbeck model (module docstring).
+    **params
+        The model's parameters (floats or PyTensor scalars), e.g. ``lam=0.7``.
+
+    Returns
+    -------
+    ndarray or TensorVariable, shape (n_nodes,)
+        New lengths; the last entry is the root edge.
+    """
+    return lengths_from_arrays(tree_arrays(tree), model, ou_root=ou_root, **params)
+
+
+def lengths_from_arrays(
+    arrays: dict[str, Any], model: str, ou_root: str = "fixed", **params: Any
+) -> Any:
+    """:func:`transformed_lengths` on the arrays of :func:`tree_arrays`.
+
+    The arrays may be numpy arrays or PyTensor variables (for example ``pm.Data``).
+    """
+    model = check_model_name(model)
+    _check_params(model, params)
+    xp = _backend(*params.values(), *arrays.values())
+    length = arrays["length"]
+    if model == "bm":
+        return length if xp is np else xp.as_tensor_variable(length)
+    h_start, h_end = arrays["h_start"], arrays["h_end"]
+    is_tip, is_root = arrays["is_tip"], arrays["is_root"]
+    root_edge = is_root * length
+    inner = length - root_edge  # branch lengths without the root edge
+    T = arrays["height"]
+    root_len = (is_root * length).sum()
+
+    if model == "lambda":
+        lam = params["lam"]
+        # diag(C) = tip height + root edge is kept; everything shared scales by lam
+        tip_total = is_tip * (h_end + root_len)
+        return is_tip * (lam * length + (1.0 - lam) * tip_total) + (1.0 - is_tip) * lam * length
+
+    if model == "kappa":
+        kappa = params["kappa"]
+        pos = length > 0
+        safe = xp.where(pos, length, 1.0)
+        return xp.where(pos, xp.exp(kappa * xp.log(safe)), 0.0)
+
+    if model == "delta":
+        delta = params["delta"]
+        T_safe = xp.where(T > 0, T, 1.0)
+
+        def powh(u: Any) -> Any:
+            pos = u > 0
+            safe = xp.where(pos, u, 1.0)
+            return xp.where(pos, xp.exp(delta * xp.log(safe)), 0.0)
+
+        return T * (powh(h_end / T_safe) - powh(h_start / T_safe)) + root_edge
+
+    if model == "early_burst":
+        r = params["rate_change"]
+        # expm1(r d)/r without dividing by zero at r = 0 (and no NaN in gradients)
+        r_safe = xp.where(abs(r) < 1e-10, 1e-10, r)
+        return xp.exp(r_safe * h_start) * xp.expm1(r_safe * inner) / r_safe + root_edge
+
+    if model == "ou":
+        alpha = params["alpha"]
+        if ou_root not in ("fixed", "stationary"):
+            raise InputError("ou_root must be 'fixed' or 'stationary'")
+        two_a = 2.0 * alpha
+        # tau(b) - tau(a) = exp(-2a(T-b)) (1 - exp(-2a(b-a))) / (2a): stable for big alpha
+        gap = xp.maximum(T - h_end, 0.0)
+        out = xp.exp(-two_a * gap) * (-xp.expm1(-two_a * inner)) / two_a + root_edge
+        if ou_root == "stationary":
+            out = out + is_root * xp.exp(-two_a * T) / two_a
+        return out
+
+    raise AssertionError(model)  # pragma: no cover

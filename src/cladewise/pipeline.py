@@ -1,0 +1,110 @@
+"""Running a spec file: files -> data -> model -> fit -> saved folder.
+
+This is the library behind ``cladewise fit``; notebooks can call :func:`fit_spec`
+directly.
+"""
+
+from __future__ import annotations
+
+import platform
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from cladewise.model.build import ModelData, ModelSpec
+from cladewise.errors import InputError
+from cladewise.inference.fit import check_output_folder, FitResult, fit
+from cladewise.inference.sampling import SamplingOptions
+from cladewise.config.analysis import Spec, load_data, load_spec
+
+__all__ = ["PreparedAnalysis", "prepare_analysis", "fit_spec", "environment"]
+
+
+@dataclass
+class PreparedAnalysis:
+    """Everything a spec asks for, validated, before any sampling."""
+
+    spec: Spec
+    model_data: ModelData
+    model_spec: ModelSpec
+    options: SamplingOptions
+    match: Any
+    data_summary: Any
+
+
+def prepare_analysis(spec_path: str | Path, **sampling_overrides: Any) -> PreparedAnalysis:
+    """Read a spec and its files and validate ``[model]`` and ``[sampling]``.
+
+    ``sampling_overrides`` (e.g. ``draws=500``) replace values of ``[sampling]``;
+    ``None`` values are ignored.
+    """
+    spec = load_spec(spec_path)
+    if not spec.model:
+        raise InputError(
+            f"{spec.path.name} has no [model] section; add one, e.g.\n"
+            '[model]\nkind = "correlated"\ntraits = ["trait_a", "trait_b"]'
+        )
+    model_spec = ModelSpec.from_dict(dict(spec.model))
+    sampling = dict(spec.sampling)
+    sampling.update({k: v for k, v in sampling_overrides.items() if v is not None})
+    options = SamplingOptions.from_dict(sampling)
+    match, summary = load_data(spec)
+    data = ModelData.from_match(match)
+    data.notes.extend(dropped_notes(match))
+    return PreparedAnalysis(spec, data, model_spec, options, match, summary)
+
+
+def dropped_notes(match: Any) -> list[str]:
+    notes = []
+    tree_drop = getattr(match, "dropped_from_tree", [])
+    table_drop = getattr(match, "dropped_from_table", [])
+    if tree_drop:
+        notes.append(f"{len(tree_drop)} tree tips without data were pruned")
+    if table_drop:
+        notes.append(f"{len(table_drop)} table species absent from the tree were left out")
+    return notes
+
+
+def environment() -> dict[str, str]:
+    """Package versions that reproduce a run."""
+    import arviz
+    import numpy
+    import pymc
+    import pytensor
+
+    from cladewise import __version__
+
+    out = {"cladewise": __version__, "python": sys.version.split()[0], "platform": platform.platform(),
+           "numpy": numpy.__version__, "pymc": pymc.__version__, "pytensor": pytensor.__version__,
+           "arviz": arviz.__version__}
+    try:
+        import nutpie
+
+        out["nutpie"] = nutpie.__version__
+    except ImportError:  # pragma: no cover
+        pass
+    return out
+
+
+def fit_spec(
+    spec_path: str | Path,
+    out_dir: str | Path | None = None,
+    overwrite: bool = False,
+    command: str | None = None,
+    **sampling_overrides: Any,
+) -> FitResult:
+    """Fit the model a spec describes and (optionally) save it to ``out_dir``."""
+    prep = prepare_analysis(spec_path, **sampling_overrides)
+    if out_dir is not None:
+        out = Path(out_dir)
+        check_output_folder(out, overwrite)
+    result = fit(prep.model_data, prep.model_spec, prep.options)
+    result.info["spec_path"] = str(prep.spec.path)
+    result.info["spec_text"] = prep.spec.path.read_text()
+    result.info["data_summary"] = prep.data_summary.to_dict()
+    result.info["environment"] = environment()
+    result.info["command"] = command or ""
+    if out_dir is not None:
+        result.save(out_dir, overwrite=overwrite)
+    return result
