@@ -23,7 +23,7 @@ from pathlib import Path
 
 import numpy as np
 
-from cladewise.studies.power import run_calibration
+from cladewise.studies.calibration import run_calibration
 from cladewise.inference.sampling import SamplingOptions
 from cladewise.data.trees import FlatTree, parse_newick
 

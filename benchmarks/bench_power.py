@@ -19,6 +19,7 @@ import sys
 import time
 from pathlib import Path
 
+from cladewise.report.study_figures import save_power_figure
 from cladewise.studies.power import run_power_study
 from cladewise.inference.sampling import SamplingOptions
 from cladewise.data.trees import FlatTree, parse_newick
@@ -68,6 +69,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"({time.perf_counter() - t0:.0f} s)\n")
         if args.out:
             res.save(args.out / name, overwrite=True)
+            save_power_figure(res, args.out / name)
     return 0
 
 

@@ -221,7 +221,7 @@ def test_variance_share_is_the_anova_share(sample_fit):
     # than the correlation does
     assert share.loc["evo_rate[a]", "tree_share"] > 0.5
     assert share.loc["evo_corr[a, b]", "tree_share"] < share.loc["evo_rate[a]", "tree_share"]
-    assert np.allclose(share["total_sd"] ** 2, share["within_sd"] ** 2 + share["between_sd"] ** 2)
+    assert np.allclose(share["total_sd"] ** 2, share["within_tree_sd"] ** 2 + share["between_sd"] ** 2)
 
 
 def test_variance_share_zero_for_identical_trees(sample_fit):

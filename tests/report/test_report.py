@@ -247,7 +247,9 @@ def test_comparison_report(tmp_path):
     assert (tmp_path / "figures" / "compare_elpd.png").is_file()
     assert (tmp_path / "figures" / "compare_elpd.svg").is_file()
     table = pd.read_csv(tmp_path / "tables" / "comparison.csv")
-    np.testing.assert_allclose(table["elpd_loo"], cmp["elpd_loo"])
+    # an arviz table is read in the comparison's own column names
+    np.testing.assert_allclose(table["elpd"], cmp["elpd_loo"])
+    np.testing.assert_allclose(table["diff_se"], cmp["dse"])
 
     class Result:  # what a comparison runner may hand over instead of a bare table
         table = cmp
@@ -255,8 +257,153 @@ def test_comparison_report(tmp_path):
 
     text2 = write_comparison_report(Result(), tmp_path / "obj").read_text(encoding="utf-8")
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in text2
-    with pytest.raises(InputError, match="elpd_loo"):
+    with pytest.raises(InputError, match="no elpd column"):
         write_comparison_report(pd.DataFrame({"x": [1]}), tmp_path / "bad")
+
+
+def _comparison_result():
+    """A ComparisonResult built from its public fields, in the layout compare_fits writes."""
+    from cladewise.evaluation.loo import ComparisonResult
+
+    table = pd.DataFrame({
+        "model": ["bm", "ou", "lambda"], "rank": [1, 2, 3],
+        "elpd": [-20.0, -21.0, -35.0], "se": [3.0, 3.5, 4.0],
+        "elpd_diff": [0.0, 1.0, 15.0], "diff_se": [0.0, 1.5, 2.5],
+        "p_loo": [3.1, 3.4, 2.9], "weight": [0.7, 0.3, 0.0], "n_high_k": [0, 2, 0],
+        "verdict": ["highest ELPD (best expected prediction of a held-out species)",
+                    "not distinguishable by LOO from bm: ELPD lower by 1.00 with se 1.50",
+                    "predicts held-out species worse than bm: ELPD lower by 15.00"],
+    })
+    return ComparisonResult(table=table, loo={}, signature="x", loglik_kind="joint",
+                            notes=["models fitted with the same seed"])
+
+
+def test_comparison_page_reads_the_columns_the_comparison_writes(tmp_path):
+    from cladewise.report import write_comparison_report
+    from cladewise.report.compare_report import comparison_figure
+
+    res = _comparison_result()
+    text = write_comparison_report(res, tmp_path).read_text(encoding="utf-8")
+    # the verdicts of the comparison itself, one per model that is not the best
+    assert 'id="verdicts"' in text
+    assert "ou: not distinguishable by LOO from bm" in text
+    assert "lambda: predicts held-out species worse than bm" in text
+    # the high-Pareto-k banner names the model with flagged species
+    assert 'id="high-pareto-k"' in text and "ou (2)" in text
+    assert "se of difference" in text and ">diff_se<" not in text
+    assert "models fitted with the same seed" in text  # the comparison's own notes
+    # the difference bars are +- 2 se of the difference wide (matplotlib's errorbar segments)
+    fig = comparison_figure(res.table.set_index("model"))
+    bars = fig.axes[0].containers[0].lines[2][0].get_segments()
+    widths = [seg[1][0] - seg[0][0] for seg in bars]
+    np.testing.assert_allclose(widths, 4 * res.table["diff_se"].to_numpy())
+    centres = [0.5 * (seg[1][0] + seg[0][0]) for seg in bars]
+    np.testing.assert_allclose(centres, -res.table["elpd_diff"].to_numpy())
+    import matplotlib.pyplot as plt
+
+    plt.close(fig)
+
+
+def test_no_banner_without_high_pareto_k(tmp_path):
+    from cladewise.report import write_comparison_report
+
+    res = _comparison_result()
+    res.table["n_high_k"] = 0
+    text = write_comparison_report(res, tmp_path).read_text(encoding="utf-8")
+    assert 'id="high-pareto-k"' not in text and 'id="verdicts"' in text
+
+
+# ------------------------------------------------------- labels shared with the summary
+def test_rank_plot_titles_are_summary_labels(fit_dir):
+    from cladewise.report.data import read_fit_folder
+    from cladewise.report.figures import main_quantities
+
+    out, _, _ = fit_dir
+    view = read_fit_folder(out)
+    summary = set(pd.read_csv(out / "summary.csv")["quantity"])
+    titles = list(main_quantities(view))
+    assert titles and set(titles) <= summary, (titles, summary)
+    assert "evo_slope[size ~ shape]" in titles and "evo_corr[size, shape]" in titles
+    # the drawn values are the posterior draws of that element
+    ref = view.posterior["evo_slope"].sel(trait="size", trait_="shape").values
+    np.testing.assert_array_equal(main_quantities(view)["evo_slope[size ~ shape]"], ref)
+
+
+def test_tree_panels_say_log_for_logged_traits(fit_dir):
+    import matplotlib.pyplot as plt
+
+    from cladewise.report.data import read_fit_folder
+    from cladewise.report.figures import tree_figure
+
+    out, _, _ = fit_dir
+    view = read_fit_folder(out)
+    view.info = dict(view.info, data_summary={"traits": [{"name": "size", "logged": True},
+                                                          {"name": "shape", "logged": False}]})
+    fig, _ = tree_figure(view, compact=False)
+    labels = [ax.get_xlabel() for ax in fig.axes]
+    assert "log(size)" in labels and "shape" in labels and "size" not in labels
+    plt.close(fig)
+    fig, _ = tree_figure(view, compact=True)
+    ticks = [t.get_text() for ax in fig.axes for t in ax.get_xticklabels()]
+    assert "log(size)" in ticks
+    plt.close(fig)
+
+
+# ------------------------------------------------------- study and tree-sample figures
+def _pooled_idata(rng):
+    """Three trees x two chains of made-up draws, pooled as fit_tree_sample pools them."""
+    corr = np.empty((6, 300, 2, 2))
+    shifts = np.repeat([-0.3, 0.0, 0.4], 2)
+    for c in range(6):
+        r = np.clip(rng.normal(shifts[c], 0.1, size=300), -0.99, 0.99)
+        corr[c] = np.stack([np.stack([np.ones(300), r], -1), np.stack([r, np.ones(300)], -1)], 1)
+    rate = rng.gamma(2.0, size=(6, 300, 2)) + shifts[:, None, None] + 1
+    idata = az.from_dict(posterior={"evo_corr": corr, "evo_rate": rate},
+                         coords={"trait": ["a", "b"], "trait_": ["a", "b"]},
+                         dims={"evo_corr": ["trait", "trait_"], "evo_rate": ["trait"]})
+    idata.posterior = idata.posterior.assign_coords(tree=("chain", np.repeat([0, 4, 9], 2)))
+    return idata
+
+
+def test_tree_sample_figure_and_variance_columns(tmp_path):
+    from cladewise.inference.treesample import per_tree_summary, tree_variance_share
+    from cladewise.report.study_figures import plot_tree_sample
+
+    idata = _pooled_idata(np.random.default_rng(8))
+    paths = plot_tree_sample(idata, tmp_path / "tree_sample")
+    assert [p.name for p in paths] == ["tree_sample.png", "tree_sample.svg"]
+    assert paths[0].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    per = per_tree_summary(idata)
+    assert set(per["quantity"]) == {"evo_corr[a, b]", "evo_rate[a]", "evo_rate[b]"}
+    # per-tree intervals are arviz's HDI of that tree's draws
+    draws = idata.posterior["evo_corr"].values[2:4, :, 0, 1].ravel()
+    row = per[(per["tree"] == 4) & (per["quantity"] == "evo_corr[a, b]")].iloc[0]
+    np.testing.assert_allclose([row.hdi_low, row.hdi_high], az.hdi(draws, hdi_prob=0.95))
+    share = tree_variance_share(idata)
+    assert "within_tree_sd" in share.columns and "within_sd" not in share.columns
+    # law of total variance with equal tree weights (numpy population variances)
+    all_corr = idata.posterior["evo_corr"].values[:, :, 0, 1]
+    means = [all_corr[k:k + 2].mean() for k in (0, 2, 4)]
+    within = np.mean([all_corr[k:k + 2].var() for k in (0, 2, 4)])
+    r = share.set_index("quantity").loc["evo_corr[a, b]"]
+    assert r.between_sd == pytest.approx(np.std(means))
+    assert r.within_tree_sd == pytest.approx(np.sqrt(within))
+
+
+def test_power_figure_reads_the_renamed_share_column(tmp_path):
+    from cladewise.report.study_figures import plot_power
+    from cladewise.studies.power import PowerResult
+
+    table = pd.DataFrame({"true_correlation": [0.0, 0.5], "n_datasets": [10, 10],
+                          "share_hdi_excludes_zero": [0.1, 0.6], "share_hdi_excludes_zero_mcse": [0.09, 0.15],
+                          "pearson_share": [0.3, 0.8], "pearson_mcse": [0.14, 0.13]})
+    res = PowerResult(table, pd.DataFrame(), {"hdi_prob": 0.95, "alpha": 0.05, "n_species": 6, "n_datasets": 10})
+    fig = plot_power(res)
+    line = fig.axes[0].containers[0].lines[0]
+    np.testing.assert_allclose(line.get_ydata(), table["share_hdi_excludes_zero"])
+    import matplotlib.pyplot as plt
+
+    plt.close(fig)
 
 
 # --------------------------------------------------------------------- progress

@@ -14,7 +14,7 @@ import pandas as pd
 import pytest
 
 from cladewise.errors import InputError
-from cladewise.studies.power import rank_of_truth, run_calibration, summarise_ranks
+from cladewise.studies.calibration import rank_of_truth, run_calibration, summarise_ranks
 from cladewise.inference.sampling import SamplingOptions
 from treegen import random_tree
 

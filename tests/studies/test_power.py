@@ -16,6 +16,7 @@ from scipy import stats
 
 from cladewise.cli.main import main
 from cladewise.errors import InputError
+from cladewise.report.study_figures import save_power_figure
 from cladewise.studies.power import PowerResult, _power_table, measurement_se, run_power_study
 from cladewise.cli.power import load_power_spec
 from cladewise.inference.sampling import SamplingOptions
@@ -59,10 +60,10 @@ def test_false_positives_phylogenetic_vs_pearson_on_two_clade_tree():
     row = res.table.iloc[0]
     assert row.n_datasets == 24 and len(res.fits) == 24
     # n = 24: a calibrated 95% HDI has P(>= 5 of 24 exclude 0) below 1% (binomial, p = 0.05).
-    assert row.phylo_share <= 0.2, res.to_text()
+    assert row.share_hdi_excludes_zero <= 0.2, res.to_text()
     # binomial with p = 0.70, n = 24: P(share < 0.4) is below 0.1%.
     assert row.pearson_share >= 0.4, res.to_text()
-    assert row.pearson_share > row.phylo_share + 0.2
+    assert row.pearson_share > row.share_hdi_excludes_zero + 0.2
     # the recorded Pearson p-values are scipy's on the simulated data (checked via r):
     r = res.fits["pearson_r"].to_numpy()
     df = tree.n_tips - 2
@@ -101,9 +102,9 @@ def test_power_table_shares_and_binomial_mcse():
     table = _power_table(fits)
     for (_, g), (_, row) in zip(fits.groupby("true_correlation"), table.iterrows()):
         k = int(g["phylo_significant"].sum())
-        assert row.phylo_share == pytest.approx(k / 40)
+        assert row.share_hdi_excludes_zero == pytest.approx(k / 40)
         # Monte Carlo se of a share: sd of Binomial(n, p) / n (scipy)
-        assert row.phylo_mcse == pytest.approx(stats.binom(40, k / 40).std() / 40)
+        assert row.share_hdi_excludes_zero_mcse == pytest.approx(stats.binom(40, k / 40).std() / 40)
         kp = int(g["pearson_significant"].sum())
         assert row.pearson_mcse == pytest.approx(stats.binom(40, kp / 40).std() / 40)
 
@@ -206,8 +207,10 @@ def test_power_result_save_writes_table_and_figures_and_refuses_overwrite(tmp_pa
                 "hdi_prob": 0.95, "alpha": 0.05}
     res = PowerResult(_power_table(fits), fits, settings)
     paths = res.save(tmp_path / "out")
+    assert set(paths) == {"table", "fits", "json"}  # no drawing in studies/
+    paths.update(save_power_figure(res, tmp_path / "out"))
     back = pd.read_csv(paths["table"])
-    assert back["phylo_share"].tolist() == [0.0, 0.5]
+    assert back["share_hdi_excludes_zero"].tolist() == [0.0, 0.5]
     assert back["fits_with_warnings"].tolist() == [0, 1]
     assert paths["png"].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert "<svg" in paths["svg"].read_text()[:2000]

@@ -94,7 +94,8 @@ def load_power_spec(path: str | Path) -> PowerSpec:
     """
     import difflib
 
-    from cladewise.studies.power import _check_tree, _pair, _traits, measurement_se
+    from cladewise.studies.power import _pair, _traits, measurement_se
+    from cladewise.studies.refit import check_study_tree
     from cladewise.inference.sampling import SamplingOptions
     from cladewise.data.trees import read_tree
 
@@ -126,7 +127,7 @@ def load_power_spec(path: str | Path) -> PowerSpec:
                          "of each trait")
 
     tree = read_tree(tree_path)
-    _check_tree(tree)
+    check_study_tree(tree)
     kw: dict[str, Any] = {}
     kw["traits"] = _traits(power.get("traits", ["trait_1", "trait_2"]))
     corrs = power.get("correlations", [0.0, 0.2, 0.4, 0.6])
@@ -183,7 +184,9 @@ def _arguments(p: argparse.ArgumentParser) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
-    from cladewise.studies.power import _output_folder, run_power_study
+    from cladewise.report.study_figures import save_power_figure
+    from cladewise.studies.power import run_power_study
+    from cladewise.studies.refit import output_folder
 
     spec = load_power_spec(args.spec)
     if args.n_datasets is not None:
@@ -193,7 +196,7 @@ def _run(args: argparse.Namespace) -> int:
     if args.seed is not None:
         spec.kwargs["seed"] = args.seed
     # refuse a used folder now rather than after an hour of fitting
-    _output_folder(args.out, args.overwrite)
+    output_folder(args.out, args.overwrite)
 
     def say(msg: str) -> None:
         print(msg, file=sys.stderr, flush=True)
@@ -204,6 +207,7 @@ def _run(args: argparse.Namespace) -> int:
         "command": "cladewise " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
     })
     paths = result.save(args.out, overwrite=True)
+    paths.update(save_power_figure(result, args.out))
     print(result.to_text())
     print("\nSaved: " + ", ".join(str(p) for p in paths.values()))
     return 0

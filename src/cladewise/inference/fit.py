@@ -27,6 +27,8 @@ import xarray as xr
 from cladewise.model.build import BuiltModel, ModelData, ModelSpec, build_model
 from cladewise.errors import InputError
 from cladewise.inference.sampling import Diagnostics, SamplingOptions, diagnose, sample
+from cladewise.model.describe import describe_model
+from cladewise.model.quantities import quantity_elements, signed_names
 
 __all__ = [
     "FitResult",
@@ -247,7 +249,7 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
 
 
 # --------------------------------------------------------------------------- summary
-_PROB_VARS = {"evo_corr", "evo_slope", "coef", "species_corr"}
+_PROB_VARS = signed_names()  # P(>0) reported for these (the quantity catalogue)
 
 
 def summarise(idata: az.InferenceData, built: BuiltModel | None = None, var_names: list[str] | None = None) -> pd.DataFrame:
@@ -295,44 +297,9 @@ def _summarise(idata: az.InferenceData, built: BuiltModel | None, var_names: lis
     return pd.DataFrame(rows)
 
 
-def quantity_elements(da: xr.DataArray, extra: list[str], name: str):
-    if not extra:
-        yield {}, name
-        return
-    if len(extra) == 1:
-        for v in da[extra[0]].values:
-            yield {extra[0]: list(da[extra[0]].values).index(v)}, f"{name}[{v}]"
-        return
-    a, b = extra[:2]
-    la, lb = list(da[a].values), list(da[b].values)
-    for i, va in enumerate(la):
-        for j, vb in enumerate(lb):
-            if name in ("evo_corr", "species_corr") and not i < j:
-                continue
-            if name == "evo_slope":
-                if i == j:
-                    continue
-                yield {a: i, b: j}, f"evo_slope[{va} ~ {vb}]"
-                continue
-            yield {a: i, b: j}, f"{name}[{va}, {vb}]"
-
-
 # --------------------------------------------------------------------------- fit
 def _describe(built: BuiltModel) -> str:
-    s = built.spec
-    evo = {"bm": "Brownian motion", "lambda": "Pagel's lambda", "ou": "Ornstein-Uhlenbeck",
-           "kappa": "kappa", "delta": "delta", "early_burst": "early burst"}[s.evolution]
-    me = {"none": "no measurement error", "se": "known standard errors",
-          "specimens": "within-species variance estimated from specimens"}[s.measurement_error]
-    if s.kind == "regression":
-        head = f"phylogenetic regression {s.formula} with {evo} residuals"
-    elif s.kind == "correlated":
-        head = f"correlated multivariate evolution of {', '.join(s.traits)} under {evo}"
-    else:
-        head = f"independent evolution of {', '.join(s.traits)} under {evo} (no evolutionary correlation)"
-    if s.species_covariance:
-        head += ", plus species-level covariance"
-    return f"{head}; {me}"
+    return describe_model(built.spec)
 
 
 def finish_fit(

@@ -52,6 +52,7 @@ from cladewise.inference.fit import (
 )
 from cladewise.inference.sampling import RHAT_MAX, ESS_MIN, BFMI_MIN, Diagnostics, SamplingOptions
 from cladewise.data.trees import FlatTree, order_tips, prune_to
+from cladewise.model.quantities import signed_names, summary_names
 
 __all__ = [
     "TreeSampleFit",
@@ -64,7 +65,6 @@ __all__ = [
     "tree_variance_share",
     "per_tree_summary",
     "tree_disagreement",
-    "plot_tree_sample",
     "fit_spec_tree_sample",
     "add_tree_sample_arguments",
     "uses_tree_sample",
@@ -72,10 +72,7 @@ __all__ = [
 ]
 
 #: quantities whose sign and "HDI excludes zero" verdict are checked across trees
-SIGNED_VARS = ("evo_corr", "evo_slope", "coef", "species_corr")
-
-# Okabe & Ito 2008 colour-universal palette
-_BLUE, _VERMILLION, _GREY = "#0072B2", "#D55E00", "#999999"
+SIGNED_VARS = signed_names()
 
 
 # =========================================================================== trees
@@ -206,6 +203,9 @@ class TreeSampleFit(FitResult):
             if self.variance_share is not None:
                 self.variance_share.to_csv(stage / "tree_variance.csv", index=False)
             if figures:
+                # drawing lives in report/ (no matplotlib in inference/)
+                from cladewise.report.study_figures import plot_tree_sample
+
                 plot_tree_sample(self, stage / "tree_sample")
             if out.exists():
                 shutil.rmtree(out)
@@ -506,9 +506,7 @@ def _default_vars(pooled: Any, idata: az.InferenceData) -> list[str]:
     built = getattr(pooled, "built", None)
     if built is not None:
         return list(built.summary_vars)
-    order = ("evo_corr", "evo_slope", "evo_rate", "evo_sd", "coef", "species_corr", "phylo_share",
-             "lambda", "alpha", "half_life", "kappa", "delta", "rate_change", "root_mean", "within_sd")
-    names = [v for v in order if v in idata.posterior]
+    names = summary_names(idata.posterior.data_vars)
     return names or list(idata.posterior.data_vars)
 
 
@@ -538,7 +536,7 @@ def tree_variance_share(pooled: Any, var_names: Sequence[str] | None = None) -> 
     Returns
     -------
     DataFrame
-        Columns quantity, variable, total_sd, within_sd (root mean within-tree
+        Columns quantity, variable, total_sd, within_tree_sd (root mean within-tree
         variance), between_sd (sd of the tree means), tree_share.
     """
     idata = _as_idata(pooled)
@@ -554,11 +552,11 @@ def tree_variance_share(pooled: Any, var_names: Sequence[str] | None = None) -> 
         total = between + within_mean
         rows.append({
             "quantity": label, "variable": name,
-            "total_sd": math.sqrt(total), "within_sd": math.sqrt(within_mean),
+            "total_sd": math.sqrt(total), "within_tree_sd": math.sqrt(within_mean),
             "between_sd": math.sqrt(between),
             "tree_share": between / total if total > 0 else float("nan"),
         })
-    return pd.DataFrame(rows, columns=["quantity", "variable", "total_sd", "within_sd", "between_sd", "tree_share"])
+    return pd.DataFrame(rows, columns=["quantity", "variable", "total_sd", "within_tree_sd", "between_sd", "tree_share"])
 
 
 def per_tree_summary(pooled: Any, var_names: Sequence[str] | None = None) -> pd.DataFrame:
@@ -603,59 +601,6 @@ def tree_disagreement(per_tree: pd.DataFrame) -> list[str]:
                 "but not on the others; the conclusion depends on the tree"
             )
     return out
-
-
-def plot_tree_sample(
-    pooled: Any, path_stem: str | Path, var_names: Sequence[str] | None = None, max_panels: int = 12
-) -> list[Path]:
-    """Per-tree means and HDIs as horizontal intervals, with the pooled interval on top.
-
-    Writes ``<path_stem>.png`` and ``<path_stem>.svg`` and returns both paths.
-    """
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    idata = _as_idata(pooled)
-    names = list(var_names) if var_names else _default_vars(pooled, idata)
-    per = per_tree_summary(idata, names)
-    quantities = list(dict.fromkeys(per["quantity"]))[:max_panels]
-    trees = list(dict.fromkeys(per["tree"]))
-    ncol = min(3, max(1, len(quantities)))
-    nrow = max(1, math.ceil(len(quantities) / ncol))
-    height = max(2.2, 0.9 + 0.06 * len(trees)) * nrow
-    stem = Path(path_stem)
-    stem.parent.mkdir(parents=True, exist_ok=True)
-    with plt.rc_context({"font.size": 8, "axes.spines.top": False, "axes.spines.right": False,
-                         "svg.fonttype": "path", "svg.hashsalt": "cladewise"}):
-        fig, axes = plt.subplots(nrow, ncol, figsize=(3.2 * ncol, height), squeeze=False)
-        for ax, q in zip(axes.ravel(), quantities):
-            g = per[per["quantity"] == q].set_index("tree").loc[trees]
-            ypos = np.arange(len(trees))
-            ax.hlines(ypos, g["hdi_low"], g["hdi_high"], color=_BLUE, lw=1.0)
-            ax.plot(g["mean"], ypos, "o", color=_BLUE, ms=2.5, label="one tree")
-            name = g["variable"].iloc[0]
-            for _, label, vals in iter_quantities(idata, [name]):
-                if label == q:
-                    flat = vals.ravel()
-                    lo, hi = az.hdi(flat, hdi_prob=HDI_PROB)
-                    ax.hlines(len(trees) + 1, lo, hi, color=_VERMILLION, lw=2.2)
-                    ax.plot(flat.mean(), len(trees) + 1, "s", color=_VERMILLION, ms=4, label="pooled")
-            if name in SIGNED_VARS:
-                ax.axvline(0.0, color=_GREY, ls="--", lw=0.8)
-            ax.set_yticks([len(trees) + 1] + ([0, len(trees) - 1] if len(trees) > 1 else [0]))
-            ax.set_yticklabels(["pooled"] + ([f"tree {trees[0]}", f"tree {trees[-1]}"] if len(trees) > 1 else [f"tree {trees[0]}"]))
-            ax.set_title(q, fontsize=8)
-        for ax in axes.ravel()[len(quantities):]:
-            ax.set_visible(False)
-        fig.suptitle(f"Posterior mean and {int(HDI_PROB * 100)}% HDI on each tree", fontsize=9)
-        fig.tight_layout()
-        paths = [stem.with_suffix(".png"), stem.with_suffix(".svg")]
-        for p in paths:
-            fig.savefig(p, dpi=110)
-        plt.close(fig)
-    return paths
 
 
 # =========================================================================== spec files and command line

@@ -57,6 +57,7 @@ from cladewise.model.evolution import (
     tree_arrays,
 )
 from cladewise.data.trees import FlatTree
+from cladewise.model.quantities import summary_names
 
 __all__ = [
     "ModelData",
@@ -445,11 +446,7 @@ def build_model(
             _likelihood(tree, parent, lengths, y_t, obs_t, R, E, err_var, mu, likelihood),
         )
 
-    summary_vars = [v for v in (
-        "evo_corr", "evo_slope", "evo_rate", "coef", "species_corr", "phylo_share",
-        "lambda", "alpha", "half_life", "kappa", "delta", "rate_change", "root_mean",
-        "within_sd",
-    ) if v in model.named_vars]
+    summary_vars = summary_names(model.named_vars)  # catalogue order (model/quantities.py)
     return BuiltModel(
         model=model, spec=spec, data=data, traits=traits,
         y=np.where(observed, y, np.nan), observed=observed, priors=priors,

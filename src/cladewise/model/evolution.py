@@ -37,6 +37,7 @@ which is an approximation, and :func:`model_warnings` says so.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from types import ModuleType
 from typing import Any
 
@@ -47,6 +48,8 @@ from cladewise.data.trees import FlatTree
 
 __all__ = [
     "MODELS",
+    "EvolutionDescription",
+    "DESCRIPTIONS",
     "TREE_ARRAY_NAMES",
     "tree_arrays",
     "lengths_from_arrays",
@@ -63,6 +66,50 @@ MODELS: dict[str, tuple[str, ...]] = {
     "delta": ("delta",),
     "early_burst": ("rate_change",),
     "ou": ("alpha",),
+}
+
+
+
+@dataclass(frozen=True)
+class EvolutionDescription:
+    """How a model of evolution is named and explained (fit summary and report).
+
+    ``name`` is the short name used in the one-line fit description, ``source`` the
+    publication, ``covariance`` the tip covariance C(theta) in words and symbols.
+    """
+
+    name: str
+    source: str
+    covariance: str
+
+    @property
+    def title(self) -> str:
+        """``name (source)``, or the name alone when there is no source."""
+        return f"{self.name} ({self.source})" if self.source else self.name
+
+
+#: model name -> its description; one entry per model of :data:`MODELS`
+DESCRIPTIONS: dict[str, EvolutionDescription] = {
+    "bm": EvolutionDescription(
+        "Brownian motion", "",
+        "C_ij = t_ij, the length of the path shared by species i and j from the root"),
+    "lambda": EvolutionDescription(
+        "Pagel's lambda", "Pagel 1999",
+        "C_ij(λ) = λ · t_ij for i ≠ j and C_ii = t_ii: λ = 1 is Brownian motion, "
+        "λ = 0 makes species independent"),
+    "kappa": EvolutionDescription("kappa", "Pagel 1999", "every branch length b becomes b^κ"),
+    "delta": EvolutionDescription(
+        "delta", "Pagel 1999",
+        "every node height h becomes T · (h / T)^δ, T the tree height (kept): δ > 1 puts more "
+        "change near the tips, δ < 1 near the root"),
+    "early_burst": EvolutionDescription(
+        "early burst", "Harmon et al. 2010",
+        "the rate at height t (distance from the root) is exp(r · t) times the rate at the root; "
+        "r < 0 slows evolution through time"),
+    "ou": EvolutionDescription(
+        "Ornstein-Uhlenbeck", "Hansen 1997",
+        "C_ij(α) = exp(−α · d_ij) · (1 − exp(−2α · t_ij)) / (2α), with d_ij the path length "
+        "between i and j; the pull α draws traits back towards one optimum"),
 }
 
 _EXACT_ONLY_ULTRAMETRIC = {"ou"}

@@ -9,30 +9,48 @@ import numpy as np
 import pandas as pd
 
 from cladewise.errors import InputError
+from cladewise.evaluation.loo import DIFF_SE_FACTOR, K_THRESHOLD
 from cladewise.report.fit_report import _atomic_write
 from cladewise.report.html import MARKER, esc, figure_html, page, table_html
 from cladewise.report.progress import Progress
 from cladewise.report.style import LINESTYLES, MARKERS, OKABE_ITO, new_figure, save_figure
 
-__all__ = ["write_comparison_report"]
+__all__ = ["write_comparison_report", "comparison_figure"]
 
 REPORT_NAME = "compare_report.html"
 
+_HEADERS = {"elpd": "ELPD (LOO)", "p_loo": "p_loo (effective parameters)", "elpd_diff": "ELPD difference",
+            "se": "se", "diff_se": "se of difference", "n_high_k": "species with Pareto k > 0.7",
+            "weight": "stacking weight"}
 
-def _unpack(comparison: Any, influential: Mapping[str, Any] | None) -> tuple[pd.DataFrame, dict[str, Any]]:
+
+#: arviz.compare names -> the names of :class:`cladewise.evaluation.loo.ComparisonResult`
+_ARVIZ_NAMES = {"elpd_loo": "elpd", "dse": "diff_se"}
+
+
+def _unpack(comparison: Any, influential: Mapping[str, Any] | None,
+            notes: list[str] | None) -> tuple[pd.DataFrame, dict[str, Any], list[str]]:
+    """The comparison table in the columns of ``ComparisonResult.table`` (index: model names)."""
     table = comparison
     if not isinstance(comparison, pd.DataFrame):
         table = getattr(comparison, "table", None)
         if influential is None:
             influential = getattr(comparison, "influential", None)
+        if notes is None:
+            notes = list(getattr(comparison, "notes", []) or [])
     if not isinstance(table, pd.DataFrame):
-        raise InputError("the comparison must be a pandas DataFrame like arviz.compare() returns, "
-                         "or an object with a .table DataFrame")
-    if "elpd_loo" not in table.columns and "elpd" in table.columns:
-        table = table.rename(columns={"elpd": "elpd_loo"})
-    if "elpd_loo" not in table.columns:
-        raise InputError("the comparison table has no elpd_loo column; pass the output of arviz.compare()")
-    return table, dict(influential or {})
+        raise InputError("the comparison must be a cladewise ComparisonResult (cladewise.evaluation.loo."
+                         "compare_fits), its .table, or a pandas DataFrame like arviz.compare() returns")
+    table = table.rename(columns={k: v for k, v in _ARVIZ_NAMES.items() if v not in table.columns})
+    if "model" in table.columns:
+        table = table.set_index("model")
+    if "elpd" not in table.columns:
+        raise InputError("the comparison table has no elpd column; pass the result of "
+                         "cladewise.evaluation.loo.compare_fits (or of arviz.compare())")
+    if "n_high_k" not in table.columns and "warning" in table.columns:
+        # arviz.compare flags a model with any high Pareto k, without the count
+        table = table.assign(n_high_k=table["warning"].astype(bool).astype(int))
+    return table, dict(influential or {}), list(notes or [])
 
 
 def _influential_rows(value: Any) -> pd.DataFrame:
@@ -50,20 +68,24 @@ def _influential_rows(value: Any) -> pd.DataFrame:
     return pd.DataFrame({"species": [str(v) for v in value]})
 
 
-def _elpd_figure(table: pd.DataFrame):
+def comparison_figure(table: pd.DataFrame):
+    """ELPD of each model relative to the best, with ± 2 se of the difference and of the ELPD.
+
+    ``table`` has the columns of ``ComparisonResult.table`` with the model names as index.
+    """
     names = [str(i) for i in table.index]
-    elpd = table["elpd_loo"].to_numpy(dtype=float)
+    elpd = table["elpd"].to_numpy(dtype=float)
     se = table["se"].to_numpy(dtype=float) if "se" in table else np.zeros_like(elpd)
     best = int(np.nanargmax(elpd))
     diff = elpd - elpd[best]
-    dse = table["dse"].to_numpy(dtype=float) if "dse" in table else np.zeros_like(elpd)
+    dse = table["diff_se"].to_numpy(dtype=float) if "diff_se" in table else np.zeros_like(elpd)
     m = len(names)
     fig, ax = new_figure(6.4, 0.55 * m + 1.4)
     yy = np.arange(m)
     ax.errorbar(diff, yy, xerr=2 * np.nan_to_num(dse), fmt=MARKERS[0], color=OKABE_ITO["blue"],
                 ecolor=OKABE_ITO["blue"], capsize=3, linestyle="none",
                 label="ELPD difference from the best model (± 2 se of the difference)")
-    ax.errorbar(elpd - elpd[best], yy + 0.22, xerr=2 * np.nan_to_num(se), fmt=MARKERS[1],
+    ax.errorbar(diff, yy + 0.22, xerr=2 * np.nan_to_num(se), fmt=MARKERS[1],
                 color=OKABE_ITO["orange"], ecolor=OKABE_ITO["orange"], capsize=2, linestyle="none",
                 markerfacecolor="white", label="ELPD of the model (± 2 se), shifted by the best ELPD")
     ax.axvline(0, color="black", linestyle=LINESTYLES[1], linewidth=1)
@@ -74,6 +96,25 @@ def _elpd_figure(table: pd.DataFrame):
     ax.legend(fontsize=7, frameon=False, loc="lower left", bbox_to_anchor=(0, 1.0))
     fig.tight_layout()
     return fig
+
+
+def _verdicts(table: pd.DataFrame, best: str) -> list[str]:
+    """One line per model against the best: the comparison's own verdict when it has one."""
+    rows = []
+    for name, r in table.iterrows():
+        if str(name) == best:
+            continue
+        if "verdict" in table.columns and isinstance(r["verdict"], str) and r["verdict"]:
+            text = r["verdict"]
+        elif "elpd_diff" in table.columns and "diff_se" in table.columns:
+            d, s = abs(float(r["elpd_diff"])), float(r["diff_se"])
+            text = (f"ELPD lower by {d:.1f} (se {s:.1f}): "
+                    + ("clearly worse" if s > 0 and d > DIFF_SE_FACTOR * s
+                       else f"not clearly different (within {DIFF_SE_FACTOR:g} se of the difference)"))
+        else:
+            continue
+        rows.append(f"<li>{esc(name)}: {esc(text)}.</li>")
+    return rows
 
 
 def write_comparison_report(
@@ -87,10 +128,12 @@ def write_comparison_report(
 
     Parameters
     ----------
-    comparison : DataFrame or object
-        An ``arviz.compare`` table (index: model names; columns rank, elpd_loo,
-        p_loo, elpd_diff, weight, se, dse, warning, ...), or an object with a
-        ``.table`` DataFrame and optionally an ``.influential`` dict.
+    comparison : ComparisonResult, DataFrame or object
+        The result of :func:`cladewise.evaluation.loo.compare_fits` (its ``table``,
+        ``influential`` and ``notes`` are used), its table (columns model or index,
+        elpd, se, elpd_diff, diff_se, p_loo, weight, n_high_k, verdict), or an
+        ``arviz.compare`` table (elpd_loo, dse and warning are read as elpd, diff_se
+        and a flag of high Pareto k).
     out_dir : str or Path
         Folder to write into (created if needed).
     influential : mapping, optional
@@ -98,13 +141,13 @@ def write_comparison_report(
         species -> Pareto k, or a DataFrame.
     title : str
     notes : list of str, optional
-        Extra plain-language lines (e.g. how the models were fitted).
+        Extra plain-language lines (default: the comparison's own notes).
 
     Returns
     -------
     Path
     """
-    table, infl = _unpack(comparison, influential)
+    table, infl, notes = _unpack(comparison, influential, notes)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     target = out / REPORT_NAME
@@ -118,35 +161,28 @@ def write_comparison_report(
     tdir = out / "tables"
     tdir.mkdir(exist_ok=True)
     shown.to_csv(tdir / "comparison.csv", index=False)
-    best = str(table["elpd_loo"].astype(float).idxmax())
+    best = str(table["elpd"].astype(float).idxmax())
     parts = [f"<p>Models compared by their expected log predictive density for a left-out species "
              f"(ELPD, from leave-one-species-out PSIS-LOO; Vehtari, Gelman &amp; Gabry 2017). "
              f"Highest ELPD: <b>{esc(best)}</b>.</p>"]
     parts.append('<div id="comparison-table">' + table_html(
-        shown, numeric=num, headers={"elpd_loo": "ELPD (LOO)", "p_loo": "p_loo (effective parameters)",
-                                     "elpd_diff": "ELPD difference", "se": "se", "dse": "se of difference"})
-        + "</div>")
-    if "elpd_diff" in table and "dse" in table:
-        rows = []
-        for name, r in table.iterrows():
-            if str(name) == best:
-                continue
-            d, s = float(r["elpd_diff"]), float(r["dse"])
-            ratio = abs(d) / s if s > 0 else np.inf
-            verdict = ("clearly worse" if ratio > 2 and abs(d) > 4
-                       else "not clearly different (difference within about 2 se, or below 4)")
-            rows.append(f"<li>{esc(name)}: ELPD lower by {abs(d):.1f} (se {s:.1f}): {esc(verdict)}.</li>")
-        if rows:
-            parts.append("<p>Against the best model (a difference under 4, or under about twice its "
-                         "standard error, is not a clear difference: common practice, Sivula et al. 2020):</p>"
-                         "<ul>" + "".join(rows) + "</ul>")
-    if "warning" in table and table["warning"].astype(bool).any():
-        parts.append('<div class="banner bad">For at least one model some Pareto k values are high, so its '
-                     "LOO estimate is unreliable; see the influential species below.</div>")
-    for n in notes or []:
+        shown.drop(columns=[c for c in ("verdict",) if c in shown.columns]), numeric=num,
+        headers=_HEADERS) + "</div>")
+    verdicts = _verdicts(table, best)
+    if verdicts:
+        parts.append(f'<div id="verdicts"><p>Against the best model (a difference within about '
+                     f"{DIFF_SE_FACTOR:g} standard errors of the difference is not a clear difference; "
+                     "Sivula et al. 2020):</p><ul>" + "".join(verdicts) + "</ul></div>")
+    if "n_high_k" in table and (table["n_high_k"].fillna(0).astype(float) > 0).any():
+        flagged = [f"{esc(m)} ({int(k)})" for m, k in table["n_high_k"].items() if k and float(k) > 0]
+        parts.append('<div class="banner bad" id="high-pareto-k">For at least one model some Pareto k '
+                     f"values are above {K_THRESHOLD:g}, so its LOO estimate is unreliable: "
+                     + ", ".join(flagged) + " (species with high k in brackets); see the influential "
+                     "species below.</div>")
+    for n in notes:
         parts.append(f"<p>{esc(n)}</p>")
     prog.step("figure")
-    fig = _elpd_figure(table)
+    fig = comparison_figure(table)
     saved = save_figure(fig, out / "figures", "compare_elpd", "ELPD differences",
                         "Each model's ELPD relative to the best (0, dashed line). Filled circles: "
                         "difference from the best model with ± 2 standard errors of the difference; open "

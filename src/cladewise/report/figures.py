@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
+from cladewise.model.quantities import QUANTITIES, plain_words, quantity_elements
 from cladewise.report.data import FitView
 from cladewise.report.style import LINESTYLES, MARKERS, OKABE_ITO, SERIES, new_figure
 from cladewise.report.tree_plot import COMPACT_ABOVE, plot_tree
@@ -23,6 +24,8 @@ __all__ = [
     "predictive_check",
     "rank_plots",
     "main_quantities",
+    "effect_draws",
+    "trait_label",
 ]
 
 HDI_PROB = 0.95
@@ -51,38 +54,30 @@ def _hdi(x: np.ndarray) -> tuple[float, float]:
     return float(lo), float(hi)
 
 
-def effect_draws(view: FitView) -> list[tuple[str, np.ndarray]]:
-    """(label, draws) of every correlation, slope and regression coefficient."""
+def _elements(view: FitView, names) -> list[tuple[str, str, np.ndarray]]:
+    """(variable, catalogue label, draws as chain x draw) of every element of ``names``."""
     post = view.posterior
-    out: list[tuple[str, np.ndarray]] = []
-    for name in ("evo_corr", "species_corr"):
-        if name in post:
-            da = post[name]
-            d1, d2 = [d for d in da.dims if d not in ("chain", "draw")][:2]
-            a, b = list(da[d1].values), list(da[d2].values)
-            what = "evolutionary" if name == "evo_corr" else "species-level"
-            for i in range(len(a)):
-                for j in range(i + 1, len(b)):
-                    out.append((f"{what} correlation {a[i]} & {b[j]}", _flat(da.isel({d1: i, d2: j}))))
-    if "evo_slope" in post:
-        da = post["evo_slope"]
-        d1, d2 = [d for d in da.dims if d not in ("chain", "draw")][:2]
-        a, b = list(da[d1].values), list(da[d2].values)
-        for i in range(len(a)):
-            for j in range(len(b)):
-                if i != j:
-                    out.append((f"slope of {a[i]} on {b[j]}", _flat(da.isel({d1: i, d2: j}))))
-    if "coef" in post:
-        da = post["coef"]
-        dims = [d for d in da.dims if d not in ("chain", "draw")]
-        if dims:
-            for i, t in enumerate(da[dims[0]].values):
-                if str(t).lower() == "intercept":
-                    continue
-                out.append((f"coefficient of {t}", _flat(da.isel({dims[0]: i}))))
-        else:
-            out.append(("coefficient", _flat(da)))
+    out = []
+    for name in names:
+        if name not in post:
+            continue
+        da = post[name]
+        extra = [d for d in da.dims if d not in ("chain", "draw")]
+        for sel, label in quantity_elements(da, extra, name):
+            x = da.isel(sel) if sel else da
+            out.append((name, label, np.asarray(x.transpose("chain", "draw").values, dtype=float)))
     return out
+
+
+def _is_intercept(label: str) -> bool:
+    return label.lower().endswith("[intercept]")
+
+
+def effect_draws(view: FitView) -> list[tuple[str, np.ndarray]]:
+    """(words, draws) of every signed quantity (correlations, slopes, coefficients), intercepts left out."""
+    names = [q.name for q in QUANTITIES if q.signed]
+    return [(plain_words(label, name), v.reshape(-1))
+            for name, label, v in _elements(view, names) if not _is_intercept(label)]
 
 
 def posterior_densities(view: FitView):
@@ -309,7 +304,7 @@ def tree_figure(view: FitView, compact: bool | None = None):
         extra = [c for c in view.design.columns if str(c).lower() != "intercept"]
         vals = np.column_stack([vals] + [view.design[c].to_numpy(dtype=float) for c in extra])
         names += extra
-    fig = plot_tree(view.tree, vals, names, compact=compact)
+    fig = plot_tree(view.tree, vals, [trait_label(view, n) for n in names], compact=compact)
     if fig.cladewise_compact:
         cap = (f"The tree ({view.tree.n_tips} species, more than {COMPACT_ABOVE}: compact view without "
                "names). Beside the tips, one column per trait scaled from its minimum (dark) to its "
@@ -400,31 +395,22 @@ def predictive_check(view: FitView, max_lines: int = 60):
     return fig, cap
 
 
+_RANK_ORDER = {"effect": 0, "evolution": 1}
+
+
 def main_quantities(view: FitView, limit: int = 6) -> dict[str, np.ndarray]:
-    """Up to ``limit`` scalar quantities (chain, draw) for convergence plots."""
-    post = view.posterior
+    """Up to ``limit`` scalar quantities (chain, draw) for convergence plots, by catalogue label.
+
+    Effects first, then evolution-model parameters, then the rest in catalogue order
+    (derived quantities such as the half-life are left out).
+    """
+    entries = [q for q in QUANTITIES if q.role != "derived"]
+    entries.sort(key=lambda q: _RANK_ORDER.get(q.role, 2))  # stable: catalogue order within a role
     out: dict[str, np.ndarray] = {}
-    for name in ("evo_corr", "evo_slope", "coef", "lambda", "alpha", "kappa", "delta", "rate_change",
-                 "evo_rate", "phylo_share", "evo_sd", "root_mean"):
-        if name not in post or len(out) >= limit:
-            continue
-        da = post[name]
-        dims = [d for d in da.dims if d not in ("chain", "draw")]
-        if not dims:
-            out[name] = da.values
-            continue
-        if name == "evo_corr" or name == "evo_slope":
-            d1, d2 = dims[:2]
-            a, b = list(da[d1].values), list(da[d2].values)
-            for i in range(len(a)):
-                for j in range(len(b)):
-                    if (name == "evo_corr" and i < j) or (name == "evo_slope" and i != j):
-                        if len(out) < limit:
-                            out[f"{name}[{a[i]}, {b[j]}]"] = da.isel({d1: i, d2: j}).values
-            continue
-        for i, v in enumerate(da[dims[0]].values):
-            if len(out) < limit:
-                out[f"{name}[{v}]"] = da.isel({dims[0]: i}).values
+    for name, label, v in _elements(view, [q.name for q in entries]):
+        if len(out) >= limit:
+            break
+        out[label] = v
     return out
 
 

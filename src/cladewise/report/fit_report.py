@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import os
-import re
 import tempfile
 import time
 from dataclasses import dataclass, field
@@ -14,6 +13,8 @@ import numpy as np
 import pandas as pd
 
 from cladewise.errors import InputError
+from cladewise.model.describe import evolution_description, measurement_error_description
+from cladewise.model.quantities import plain_words, quantity
 from cladewise.report import figures as F
 from cladewise.report.data import FitView, read_fit_folder
 from cladewise.report.html import MARKER, esc, figure_html, fmt, page, table_html
@@ -90,63 +91,9 @@ def _atomic_write(path: Path, text: str) -> None:
 
 
 # --------------------------------------------------------------------------- words
-_PLAIN = {
-    "evo_corr": "evolutionary correlation",
-    "evo_slope": "evolutionary slope",
-    "evo_rate": "evolutionary rate (variance per unit branch length)",
-    "evo_sd": "evolutionary standard deviation",
-    "coef": "regression coefficient",
-    "species_corr": "species-level (non-phylogenetic) correlation",
-    "phylo_share": "phylogenetic share of variance",
-    "lambda": "Pagel's lambda",
-    "alpha": "Ornstein-Uhlenbeck pull (alpha)",
-    "half_life": "phylogenetic half-life, ln 2 / alpha",
-    "kappa": "kappa (branch lengths raised to this power)",
-    "delta": "delta (node heights raised to this power)",
-    "rate_change": "rate change per unit time (early burst)",
-    "root_mean": "mean at the root",
-    "within_sd": "within-species standard deviation",
-}
-
-
 def plain_quantity(quantity: str, variable: str) -> str:
-    """``evo_slope[a ~ b]`` -> ``evolutionary slope of a on b`` (and so on)."""
-    m = re.match(r"^[^\[]+\[(.*)\]$", str(quantity))
-    inner = m.group(1) if m else ""
-    base = _PLAIN.get(str(variable), str(variable))
-    if not inner:
-        return base
-    if variable == "evo_slope" and " ~ " in inner:
-        a, b = inner.split(" ~ ", 1)
-        return f"evolutionary slope of {a} on {b}"
-    if variable in ("evo_corr", "species_corr") and ", " in inner:
-        a, b = inner.split(", ", 1)
-        return f"{base}, {a} & {b}"
-    return f"{base}, {inner}"
-
-
-_EVOLUTION = {
-    "bm": ("Brownian motion",
-           "C_ij = t_ij, the length of the path shared by species i and j from the root"),
-    "lambda": ("Pagel's lambda (Pagel 1999)",
-               "C_ij(λ) = λ · t_ij for i ≠ j and C_ii = t_ii: λ = 1 is Brownian motion, "
-               "λ = 0 makes species independent"),
-    "ou": ("Ornstein-Uhlenbeck with one optimum (Hansen 1997)",
-           "C_ij(α) = exp(−α · d_ij) · (1 − exp(−2α · t_ij)) / (2α), with d_ij the path length "
-           "between i and j; the pull α draws traits back towards the optimum"),
-    "kappa": ("kappa (Pagel 1999)", "every branch length b becomes b^κ"),
-    "delta": ("delta (Pagel 1999)", "every node height h becomes h^δ"),
-    "early_burst": ("early burst (Harmon et al. 2010)",
-                    "the rate at time t is exp(r · t) times the rate at the root, r ≤ 0"),
-}
-
-_ME = {
-    "none": "y_ij = Y_ij (the species means are taken as exact)",
-    "se": "y_ij ~ Normal(Y_ij, s_ij²), with s_ij the standard error of the mean given in the data",
-    "specimens": ("x_ijm ~ Normal(Y_ij, v_ij) for specimen m of species i: the within-species "
-                  "variances v_ij are estimated from the specimens, pooled partially across species; "
-                  "equivalently ȳ_ij ~ Normal(Y_ij, v_ij / n_ij)"),
-}
+    """``evo_slope[a ~ b]`` -> ``evolutionary slope of a on b`` (the quantity catalogue's words)."""
+    return plain_words(quantity, variable)
 
 
 def _model_html(view: FitView) -> str:
@@ -154,7 +101,7 @@ def _model_html(view: FitView) -> str:
     model = info.get("model") or {}
     kind = view.kind or "unknown"
     evo_key = str(model.get("evolution") or "bm")
-    evo_name, evo_formula = _EVOLUTION.get(evo_key, (evo_key, "see the spec"))
+    evo = evolution_description(evo_key)
     me_key = str(model.get("measurement_error") or "none")
     spc = bool(model.get("species_covariance"))
     parts = [f"<p>{esc(info.get('description') or 'No description was saved with this fit.')}</p>"]
@@ -177,9 +124,9 @@ def _model_html(view: FitView) -> str:
     if spc:
         words.append("E is a species-level covariance that does not follow the tree; R against E splits "
                      "covariance into a phylogenetic and a species-level part.")
-    eq.append(f"C(θ): {evo_formula}")
-    eq.append(f"observation: {_ME.get(me_key, me_key)}")
-    words.append(f"Model of evolution: {esc(evo_name)}. Measurement error: {esc(me_key)}. "
+    eq.append(f"C(θ): {evo.covariance}")
+    eq.append(f"observation: {measurement_error_description(me_key).observation}")
+    words.append(f"Model of evolution: {esc(evo.title)}. Measurement error: {esc(me_key)}. "
                  f"Likelihood: {esc(info.get('likelihood') or 'not recorded')}.")
     parts.append("<p>" + " ".join(words) + "</p>")
     parts.append('<div class="formula">' + "\n".join(esc(e) for e in eq) + "</div>")
@@ -325,7 +272,8 @@ def _results_html(view: FitView, tables: dict[str, pd.DataFrame]) -> str:
     words = []
     for r in t.itertuples(index=False):
         var = getattr(r, "variable", "")
-        if var not in ("evo_corr", "evo_slope", "coef", "species_corr", "lambda", "alpha", "phylo_share"):
+        entry = quantity(var)
+        if entry is None or not entry.headline:
             continue
         if var == "coef" and str(r.quantity).lower().endswith("[intercept]"):
             continue

@@ -1,0 +1,142 @@
+"""One compiled model refitted to many simulated data sets: shared by the studies.
+
+The power study (:mod:`cladewise.studies.power`) and the simulation-based calibration
+(:mod:`cladewise.studies.calibration`) both build the correlated Brownian-motion model
+once on a reference data set and refit it to every simulated data set without
+recompiling (the data are ``pm.Data``).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+import pandas as pd
+
+from cladewise.data.trees import FlatTree
+from cladewise.errors import InputError
+
+__all__ = [
+    "Progress",
+    "RefitStudy",
+    "make_refit_study",
+    "default_study_options",
+    "check_study_tree",
+    "simulate_datasets",
+    "fit_problems",
+    "output_folder",
+    "say",
+]
+
+Progress = Callable[[str], None] | None
+
+
+def default_study_options(options: Any) -> Any:
+    """Sampler settings of a study: the given ones (validated) or 2 x 500 draws, no progress bar."""
+    from cladewise.inference.sampling import SamplingOptions
+
+    if options is None:
+        # Short chains are enough for a share of intervals; progress bars of hundreds
+        # of fits would drown the log.
+        options = SamplingOptions(chains=2, draws=500, tune=500, progress=False)
+    options.validate()
+    return options
+
+
+def say(progress: Progress, message: str) -> None:
+    """Pass one line to the progress callback, if any."""
+    if progress is not None:
+        progress(message)
+
+
+def check_study_tree(tree: FlatTree) -> None:
+    """Raise :class:`InputError` unless traits can be simulated on ``tree``."""
+    if not isinstance(tree, FlatTree):
+        raise InputError("tree must be a cladewise FlatTree (read one with cladewise.data.trees.read_tree)")
+    if tree.n_tips < 4:
+        raise InputError(f"the tree has {tree.n_tips} tips; a simulation study needs at least 4 species")
+    if not np.all(np.isfinite(tree.length)) or np.any(tree.length < 0):
+        raise InputError("branch lengths must be finite and >= 0 to simulate on the tree")
+    if not float(tree.tip_heights().max()) > 0:
+        raise InputError("the tree has zero height: every branch length is 0")
+
+
+@dataclass
+class RefitStudy:
+    """A model built on a reference data set and compiled once."""
+
+    built: Any
+    compiled: Any
+    options: Any
+    err_var: np.ndarray | None
+
+    def fit(self, y: np.ndarray, seed: int) -> Any:
+        """Sample the model on data ``y`` (species x traits) with ``seed``; returns InferenceData."""
+        from cladewise.inference.sampling import sample
+
+        values = {"obs_values": np.asarray(y, dtype=float)}
+        if self.err_var is not None:
+            values["obs_err_var"] = self.err_var
+        opts = dataclasses.replace(self.options, seed=int(seed))
+        if self.compiled is not None:
+            return sample(self.built, opts, compiled=self.compiled.with_data(**values))
+        return sample(self.built, opts, tree_values=values)
+
+    @property
+    def draws_per_fit(self) -> int:
+        """Posterior draws kept per fit (all chains)."""
+        return int(self.options.chains * self.options.draws)
+
+
+def make_refit_study(
+    tree: FlatTree, traits: list[str], y_ref: np.ndarray, se: np.ndarray | None, options: Any
+) -> RefitStudy:
+    """Build and compile the correlated BM model (known se when ``se`` is given) on ``y_ref``."""
+    from cladewise.inference.sampling import compile_model
+    from cladewise.model.build import ModelData, ModelSpec, build_model
+
+    species = list(tree.tip_names)
+    values = pd.DataFrame(y_ref, index=species, columns=traits)
+    se_df = None if se is None else pd.DataFrame(se, index=species, columns=traits)
+    spec = ModelSpec(kind="correlated", traits=traits, evolution="bm",
+                     measurement_error="none" if se is None else "se")
+    built = build_model(ModelData(tree, values, se=se_df), spec)
+    compiled = compile_model(built, options.sampler)
+    return RefitStudy(built, compiled, options, None if se is None else se**2)
+
+
+def simulate_datasets(tree: FlatTree, R: np.ndarray, mu: np.ndarray, se: np.ndarray | None,
+                      gen: np.random.Generator, n: int) -> np.ndarray:
+    """``n`` data sets (n x species x traits) by BM with rate matrix ``R`` plus measurement error."""
+    from cladewise.studies.simulate import simulate_traits
+
+    return simulate_traits(tree, R, mu, se=se, rng=gen, n_reps=n)
+
+
+def fit_problems(idata: Any) -> tuple[int, float]:
+    """(divergent transitions, R-hat of the evolutionary correlation) of one fit."""
+    import arviz as az
+
+    div = int(np.asarray(idata.sample_stats["diverging"]).sum()) if "diverging" in idata.sample_stats else 0
+    rhat = float("nan")
+    if idata.posterior.sizes["chain"] > 1:
+        da = idata.posterior["evo_corr"][:, :, 0, 1]
+        rhat = float(az.rhat(da.to_dataset(name="r"))["r"])
+    return div, rhat
+
+
+def output_folder(out_dir: str | Path, overwrite: bool) -> Path:
+    """Create ``out_dir``; refuse a non-empty folder unless ``overwrite`` (never lose results)."""
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"{out} exists and is not a folder; choose another --out")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise InputError(
+            f"output folder {out} is not empty; choose a new folder or pass --overwrite "
+            "(overwrite=True) to replace its files"
+        )
+    out.mkdir(parents=True, exist_ok=True)
+    return out
