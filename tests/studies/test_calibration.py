@@ -83,3 +83,11 @@ def test_sbc_guard_correlated_bm_with_known_se():
     assert 0.7 <= pooled.coverage.iloc[0] <= 1.0, res.to_text()
     assert len(res.ranks) == 100
     assert res.ranks["rank"].between(0, 99).all()
+    # parameters are labelled as in the summary table (the quantity catalogue)
+    assert set(res.ranks["parameter"]) == {"evo_corr[trait_1, trait_2]", "evo_rate[trait_1]", "evo_rate[trait_2]",
+                                           "root_mean[trait_1]", "root_mean[trait_2]"}
+    # share of divergent draws per fit: divergent transitions / (chains x draws)
+    fits = res.fits
+    assert len(fits) == 20
+    np.testing.assert_allclose(fits["divergent_share"], fits["divergences"] / (2 * 250))
+    assert int(fits["divergences"].sum()) == res.settings["divergences"]

@@ -54,13 +54,13 @@ def plot_power(result: Any, ax: Any = None) -> Any:
     x = t["true_correlation"].to_numpy()
 
     def bars(share: str, se: str) -> np.ndarray:
-        p, half = t[share].to_numpy(), 1.96 * t[se].to_numpy()
+        p, half = t[share].to_numpy(dtype=float), 1.96 * t[se].to_numpy(dtype=float)
         return np.vstack([np.minimum(half, p), np.minimum(half, 1 - p)])
 
-    ax.errorbar(x, t[_PHYLO], yerr=bars(_PHYLO, _PHYLO_SE), color=OKABE_ITO["blue"],
+    ax.errorbar(x, t[_PHYLO].to_numpy(dtype=float), yerr=bars(_PHYLO, _PHYLO_SE), color=OKABE_ITO["blue"],
                 linestyle=LINESTYLES[0], marker=MARKERS[0], capsize=3,
                 label=f"phylogenetic model ({100 * s['hdi_prob']:.0f}% HDI excludes 0)")
-    ax.errorbar(x, t["pearson_share"], yerr=bars("pearson_share", "pearson_mcse"), color=OKABE_ITO["vermillion"],
+    ax.errorbar(x, t["pearson_share"].to_numpy(dtype=float), yerr=bars("pearson_share", "pearson_mcse"), color=OKABE_ITO["vermillion"],
                 linestyle=LINESTYLES[1], marker=MARKERS[1], capsize=3,
                 label=f"Pearson test ignoring the tree (p < {s['alpha']:g})")
     ax.axhline(s["alpha"], color=OKABE_ITO["black"], linestyle=LINESTYLES[2], linewidth=1,
