@@ -14,7 +14,7 @@ import pandas as pd
 
 from cladewise.errors import InputError
 from cladewise.model.describe import evolution_description, measurement_error_description
-from cladewise.model.quantities import plain_words, quantity
+from cladewise.model.quantities import plain_words, quantity as catalogue_entry
 from cladewise.report import figures as F
 from cladewise.report.data import FitView, read_fit_folder
 from cladewise.report.html import MARKER, esc, figure_html, fmt, page, table_html
@@ -91,11 +91,6 @@ def _atomic_write(path: Path, text: str) -> None:
 
 
 # --------------------------------------------------------------------------- words
-def plain_quantity(quantity: str, variable: str) -> str:
-    """``evo_slope[a ~ b]`` -> ``evolutionary slope of a on b`` (the quantity catalogue's words)."""
-    return plain_words(quantity, variable)
-
-
 def _model_html(view: FitView) -> str:
     info = view.info
     model = info.get("model") or {}
@@ -272,13 +267,13 @@ def _results_html(view: FitView, tables: dict[str, pd.DataFrame]) -> str:
     words = []
     for r in t.itertuples(index=False):
         var = getattr(r, "variable", "")
-        entry = quantity(var)
+        entry = catalogue_entry(var)
         if entry is None or not entry.headline:
             continue
         if var == "coef" and str(r.quantity).lower().endswith("[intercept]"):
             continue
         lo, hi = r.hdi_low, r.hdi_high
-        s = f"{plain_quantity(r.quantity, var)}: {fmt(r.mean)} ({hdi}% HDI {fmt(lo)} to {fmt(hi)})"
+        s = f"{plain_words(r.quantity, var)}: {fmt(r.mean)} ({hdi}% HDI {fmt(lo)} to {fmt(hi)})"
         pp = getattr(r, "prob_positive", None)
         if pp is not None and pp == pp:
             s += f", P(>0) = {float(pp):.2f}"
@@ -295,7 +290,7 @@ def _results_html(view: FitView, tables: dict[str, pd.DataFrame]) -> str:
     df = t[[c for c in cols if c in t.columns]].copy()
     tables["results"] = df
     shown = df.copy()
-    shown.insert(0, "meaning", [plain_quantity(q, v) for q, v in zip(df["quantity"], df.get("variable", df["quantity"]))])
+    shown.insert(0, "meaning", [plain_words(q, v) for q, v in zip(df["quantity"], df.get("variable", df["quantity"]))])
     shown = shown.drop(columns=[c for c in ("variable",) if c in shown.columns])
     headers = {"quantity": "name", "hdi_low": f"{hdi}% HDI low", "hdi_high": f"{hdi}% HDI high",
                "prob_positive": "P(>0)", "r_hat": "R-hat", "ess_bulk": "ESS bulk", "ess_tail": "ESS tail"}
