@@ -19,7 +19,8 @@ from cladewise.errors import InputError
 from cladewise.studies.power import PowerResult, _power_table, measurement_se, run_power_study
 from cladewise.cli.power import load_power_spec
 from cladewise.inference.sampling import SamplingOptions
-from cladewise.data.trees import FlatTree, parse_newick
+from cladewise.data.trees import FlatTree
+from cladewise.data.treefiles import parse_newick
 
 
 # ------------------------------------------------------------------ trees
