@@ -15,7 +15,8 @@ from typing import Sequence
 
 import numpy as np
 
-from cladewise.data.trees import FlatTree, few_names, prune_to
+from cladewise.data.textfile import read_text
+from cladewise.data.trees import FlatTree, check_scale, few_names, prune_to
 from cladewise.errors import InputError
 
 __all__ = ["format_newick", "format_nexus", "parse_newick", "read_tree", "read_trees"]
@@ -57,12 +58,48 @@ def _unquote(label: str) -> str:
     return label
 
 
+# A branch length as printed: digits, decimals, exponent (for its precision).
+_NUMBER = re.compile(r"[+-]?\d*(?:\.(\d*))?(?:[eE]([+-]?\d+))?")
+
+
+def _decimals(token: str) -> int | None:
+    """Decimal places of a printed number (``'1.5e-3'`` -> 4); None for a plain
+    integer, which is taken as exact."""
+    m = _NUMBER.fullmatch(token.strip())
+    if m is None or (m.group(1) is None and m.group(2) is None):
+        return None
+    return len(m.group(1) or "") - int(m.group(2) or 0)
+
+
+def _printed_decimals(counts: dict[int | None, int]) -> int | None:
+    """The precision the lengths were printed with, from how many lengths have each
+    number of decimal places (None: integers). A writer that rounds to ``d``
+    places prints most lengths with exactly ``d`` (only a trailing zero drops a
+    place), so ``d`` is trusted when at least half the lengths have it; otherwise
+    (hand-written trees, significant-digit formats) the lengths are taken as exact."""
+    places = [d for d in counts if d is not None]
+    if not places:
+        return None
+    d = max(places)
+    return d if counts[d] >= 0.5 * sum(counts.values()) else None
+
+
+def _rounding_errors(n_nodes: int, decimals: int | None) -> np.ndarray | None:
+    """Per-branch rounding error of lengths printed with ``decimals`` places: half
+    a unit of the last place (None when the lengths are taken as exact)."""
+    if decimals is None:
+        return None
+    return np.full(n_nodes, 0.5 * 10.0 ** (-decimals))
+
+
 @dataclass
 class _NewickChunk:
-    text: str  # the tree with comments removed, ending in ';'
+    text: str  # the tree with comments removed and quoted labels replaced, ending in ';'
     tips: list[str]
     start: str  # where the tree starts in the file
     root_has_length: bool
+    decimals: int | None  # printed decimal places of the lengths (None: exact)
+    quoted: dict[str, str]  # placeholder -> label, for quoted labels
 
 
 def _scan_newick(text: str, source: str, first_line: int = 1) -> list[_NewickChunk]:
@@ -80,6 +117,20 @@ def _scan_newick(text: str, source: str, first_line: int = 1) -> list[_NewickChu
     kind, name, at, has_len = "", "", 0, False
     state = "between"  # between | begin | node | colon | length
     tree_start = 0
+    places: dict[int | None, int] = {}
+    # ete3 cannot read quoted labels holding a doubled apostrophe (the Newick
+    # escape of '), so every quoted label reaches it as a plain placeholder word.
+    quoted: dict[str, str] = {}
+    stem = "cladewiseq"
+    while stem in text:
+        stem += "q"
+
+    def bare(tok: str) -> str:
+        if tok[0] != "'":
+            return tok
+        key = f"{stem}{len(quoted)}"
+        quoted[key] = _unquote(tok)
+        return key
 
     def fail(offset: int, what: str, fix: str) -> None:
         raise InputError(f"{source}, {where(offset)}: {what}. {fix}")
@@ -108,6 +159,7 @@ def _scan_newick(text: str, source: str, first_line: int = 1) -> list[_NewickChu
             state = "begin"
             tree_start = pos
             toks, tips, tip_at, opens = [], [], {}, []
+            places, quoted = {}, {}
         if state == "begin":
             if tok == "(":
                 opens.append(pos)
@@ -124,7 +176,7 @@ def _scan_newick(text: str, source: str, first_line: int = 1) -> list[_NewickChu
                 )
             tip_at[name] = pos
             tips.append(name)
-            toks.append(tok)
+            toks.append(bare(tok))
             state = "node"
             continue
         if state == "colon":
@@ -141,6 +193,8 @@ def _scan_newick(text: str, source: str, first_line: int = 1) -> list[_NewickChu
                     "Branch lengths must be zero or positive; check how the tree was made.",
                 )
             toks.append(tok)
+            d = _decimals(tok)
+            places[d] = places.get(d, 0) + 1
             has_len = True
             state = "length"
             continue
@@ -165,12 +219,16 @@ def _scan_newick(text: str, source: str, first_line: int = 1) -> list[_NewickChu
             if opens:
                 fail(opens[-1], "'(' never closed", "Check the parentheses.")
             toks.append(tok)
-            chunks.append(_NewickChunk("".join(toks), tips, where(tree_start), has_len))
+            chunks.append(
+                _NewickChunk(
+                    "".join(toks), tips, where(tree_start), has_len, _printed_decimals(places), quoted
+                )
+            )
             state = "between"
             continue
         if state == "node" and kind == "clade" and not name and tok not in "(:":
             name = _unquote(tok)
-            toks.append(tok)
+            toks.append(bare(tok))
             continue
         fail(pos, f"unexpected '{tok[:30]}'", "Check the Newick syntax near this place.")
     if state != "between":
@@ -180,9 +238,10 @@ def _scan_newick(text: str, source: str, first_line: int = 1) -> list[_NewickChu
     return chunks
 
 
-def _from_ete(root, tips_expected: Sequence[str]) -> FlatTree:
+def _from_ete(root, chunk: _NewickChunk) -> FlatTree:
     """Flatten an ete3 tree: tips in file order, internal nodes in post-order."""
-    n_tips = len(tips_expected)
+    n_tips = len(chunk.tips)
+    quoted = chunk.quoted
     index: dict[int, int] = {}
     order = list(root.traverse("postorder"))
     n_nodes = len(order)
@@ -195,18 +254,20 @@ def _from_ete(root, tips_expected: Sequence[str]) -> FlatTree:
         if node.is_leaf():
             ids[j] = k_tip
             k_tip += 1
-            tip_names.append(_unquote(node.name))
+            tip_names.append(quoted.get(node.name, node.name))
         else:
             ids[j] = k_int
             k_int += 1
-            labels.append(_unquote(node.name) or None)
+            labels.append(quoted.get(node.name, node.name) or None)
         index[id(node)] = j
     par = np.full(n_nodes, -1, dtype=np.int64)
     for j, node in enumerate(order):
         lengths[ids[j]] = node.dist
         if node.up is not None:
             par[ids[j]] = ids[index[id(node.up)]]
-    return _finish(par, lengths, tip_names, labels, root_has_length=None)
+    if not chunk.root_has_length:
+        lengths[-1] = 0.0
+    return _finish(par, lengths, tip_names, labels, _rounding_errors(n_nodes, chunk.decimals))
 
 
 def _finish(
@@ -214,12 +275,9 @@ def _finish(
     lengths: np.ndarray,
     tip_names: list[str],
     labels: list[str | None],
-    root_has_length: bool | None,
+    length_error: np.ndarray | None,
 ) -> FlatTree:
-    n = par.shape[0]
-    if root_has_length is False:
-        lengths[n - 1] = 0.0
-    tree = FlatTree(par, lengths, tuple(tip_names), tuple(labels))
+    tree = FlatTree(par, lengths, tuple(tip_names), tuple(labels), length_error)
     if tree.n_tips > 1 and np.any(tree.n_children()[tree.n_tips :] == 1):
         # Single-child nodes carry no information for the models; merge them into
         # their child (lengths add up, covariance unchanged).
@@ -266,13 +324,80 @@ def _chunk_to_tree(chunk: _NewickChunk, source: str) -> FlatTree:
             et = ete3.Tree(chunk.text, format=1, quoted_node_names=True)
         except Exception as exc:  # ete3 raises NewickError; the scan caught most cases
             raise InputError(f"{source}: the tree at {chunk.start} cannot be read: {exc}") from None
-        tree = _from_ete(et, chunk.tips)
+        tree = _from_ete(et, chunk)
     finally:
         if was_enabled:
             gc.enable()
-    if not chunk.root_has_length and tree.length[tree.root] != 0.0:
-        tree = tree.with_lengths(np.concatenate([tree.length[:-1], [0.0]]))
+    check_scale(tree, f"{source}, the tree at {chunk.start}")
     return tree
+
+
+# NEXUS tokens, enough to find the TAXA labels, the TRANSLATE table and the
+# printed branch lengths (dendropy adds unknown tip names as new taxa silently).
+_NEXUS_TOKEN = re.compile(r"\[[^\]]*\]|'(?:[^']|'')*'|[;,=():]|[^\s;,=():\[\]']+")
+
+
+@dataclass
+class _NexusFacts:
+    taxlabels: list[str] | None  # None: no TAXLABELS statement
+    translate: dict[str, str] | None  # key -> label; None: no TRANSLATE statement
+    decimals: int | None  # printed decimal places of the lengths (None: exact)
+
+
+def _nexus_facts(text: str) -> _NexusFacts:
+    taxlabels: list[str] | None = None
+    translate: dict[str, str] | None = None
+    places: dict[int | None, int] = {}
+    toks = [t for t in _NEXUS_TOKEN.findall(text) if t[0] != "["]
+    i, n = 0, len(toks)
+    while i < n:
+        word = toks[i].lower()
+        if word == "taxlabels":
+            taxlabels = taxlabels or []
+            i += 1
+            while i < n and toks[i] != ";":
+                taxlabels.append(_unquote(toks[i]))
+                i += 1
+        elif word == "translate":
+            translate = translate or {}
+            i += 1
+            while i + 1 < n and toks[i] != ";":
+                translate[_unquote(toks[i])] = _unquote(toks[i + 1])
+                i += 2
+                if i < n and toks[i] == ",":
+                    i += 1
+        elif word == ":" and i + 1 < n:
+            d = _decimals(toks[i + 1])
+            places[d] = places.get(d, 0) + 1
+        i += 1
+    return _NexusFacts(taxlabels, translate, _printed_decimals(places))
+
+
+def _check_nexus_tips(tree: FlatTree, facts: _NexusFacts, where: str) -> None:
+    """Tips must be declared: in TAXLABELS when the file has a TAXA block, and as
+    TRANSLATE labels (or taxon names) when it has a translate table."""
+    known: set[str] = set()
+    if facts.taxlabels is not None:
+        known |= set(facts.taxlabels)
+    if facts.translate is not None:
+        known |= set(facts.translate.values())
+    if not known:
+        return
+    # dendropy matches taxon names regardless of case
+    lower = {k.lower() for k in known}
+    unknown = [nm for nm in tree.tip_names if nm.lower() not in lower]
+    if not unknown:
+        return
+    if facts.translate is not None:
+        raise InputError(
+            f"{where}: tip(s) {few_names(unknown)} are neither keys of the TRANSLATE table "
+            "nor declared taxon names. Add them to the TRANSLATE table (and TAXLABELS), "
+            "or fix the tree."
+        )
+    raise InputError(
+        f"{where}: tip(s) {few_names(unknown)} are not in the TAXA block (TAXLABELS). "
+        "Add them to TAXLABELS (and NTAX), or fix the names in the tree."
+    )
 
 
 def _read_nexus(path: Path, text: str) -> list[FlatTree]:
@@ -297,13 +422,17 @@ def _read_nexus(path: Path, text: str) -> list[FlatTree]:
         ) from None
     if len(tlist) == 0:
         raise InputError(f"{path}: the NEXUS file holds no tree (no 'tree NAME = ...;' line).")
+    facts = _nexus_facts(text)
     trees = []
     for k, dt in enumerate(tlist, start=1):
-        trees.append(_from_dendropy(dt, f"{path}, tree {k}" + (f" ('{dt.label}')" if dt.label else "")))
+        where = f"{path}, tree {k}" + (f" ('{dt.label}')" if dt.label else "")
+        tree = _from_dendropy(dt, where, facts.decimals)
+        _check_nexus_tips(tree, facts, where)
+        trees.append(tree)
     return trees
 
 
-def _from_dendropy(dt, where: str) -> FlatTree:
+def _from_dendropy(dt, where: str, decimals: int | None) -> FlatTree:
     nodes = list(dt.postorder_node_iter())
     n_nodes = len(nodes)
     n_tips = sum(1 for nd in nodes if nd.is_leaf())
@@ -351,7 +480,9 @@ def _from_dendropy(dt, where: str) -> FlatTree:
         lengths[i] = float(ln)
     if lengths[-1] < 0:
         lengths[-1] = 0.0
-    return _finish(par, lengths, tip_names, labels, root_has_length=None)
+    tree = _finish(par, lengths, tip_names, labels, _rounding_errors(n_nodes, decimals))
+    check_scale(tree, where)
+    return tree
 
 
 def _dendro_node_desc(nd) -> str:
@@ -377,12 +508,7 @@ def read_trees(path: str | Path) -> list[FlatTree]:
         branch lengths, or trees that disagree on their tips.
     """
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise InputError(f"tree file not found: {path}. Check the path.") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"cannot read tree file {path}: {exc}") from None
+    text = read_text(path, "tree file")
     if text.lstrip().upper().startswith("#NEXUS"):
         trees = _read_nexus(path, text)
     else:

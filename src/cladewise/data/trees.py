@@ -29,7 +29,9 @@ from cladewise.errors import InputError
 
 __all__ = [
     "FlatTree",
+    "HEIGHT_RANGE",
     "TreeFacts",
+    "check_scale",
     "covariance",
     "describe_tree",
     "few_names",
@@ -53,12 +55,18 @@ class FlatTree:
     node_labels : tuple of str or None, optional
         Labels of the internal nodes ``n_tips .. n_nodes - 1`` (clade names from the
         file), ``None`` where unlabelled.
+    length_error : ndarray of float64, shape (n_nodes,), or None, optional
+        Largest error of each branch length from the rounding of the tree file (half
+        a unit of the last printed decimal, e.g. ``5e-7`` for lengths written with 6
+        decimals); None (the default) when the lengths are exact or their precision
+        is unknown. The ultrametric check allows for it.
     """
 
     parent: np.ndarray
     length: np.ndarray
     tip_names: tuple[str, ...]
     node_labels: tuple[str | None, ...] = field(default=())
+    length_error: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         parent = np.ascontiguousarray(self.parent, dtype=np.int64)
@@ -69,6 +77,11 @@ class FlatTree:
         n_int = parent.shape[0] - len(self.tip_names)
         labels = tuple(self.node_labels) if self.node_labels else (None,) * n_int
         object.__setattr__(self, "node_labels", labels)
+        if self.length_error is not None:
+            err = np.ascontiguousarray(self.length_error, dtype=np.float64)
+            if err.shape != parent.shape or not np.all(err >= 0):
+                raise ValueError("length_error must hold one value >= 0 per node")
+            object.__setattr__(self, "length_error", err)
         self._check_invariants()
 
     def _check_invariants(self) -> None:
@@ -127,13 +140,32 @@ class FlatTree:
         """Root-to-tip distance of every tip."""
         return self.heights()[: self.n_tips]
 
+    def tip_height_error(self) -> np.ndarray:
+        """Largest error of each root-to-tip distance due to the rounding of the
+        lengths in the file: the sum of :attr:`length_error` along the path."""
+        if self.length_error is None:
+            return np.zeros(self.n_tips)
+        e = np.zeros(self.n_nodes)
+        par, le = self.parent, self.length_error
+        for i in range(self.n_nodes - 2, -1, -1):
+            e[i] = e[par[i]] + le[i]
+        return e[: self.n_tips]
+
     def is_ultrametric(self, rtol: float = 1e-6) -> bool:
-        """True when all root-to-tip distances agree within ``rtol`` of the longest."""
+        """True when all root-to-tip distances agree within ``rtol`` of the longest,
+        once the rounding of the printed lengths is allowed for.
+
+        With rounding, tip ``i``'s true height lies within ``e_i`` of its computed
+        height ``h_i`` (:meth:`tip_height_error`); the tips can share one true height
+        when ``max(h - e) <= min(h + e)``; ``rtol`` is added on top.
+        """
         th = self.tip_heights()
-        return bool(th.max() - th.min() <= rtol * max(th.max(), 1e-300))
+        err = self.tip_height_error()
+        spread = float(np.max(th - err) - np.min(th + err))
+        return bool(spread <= rtol * max(th.max(), 1e-300))
 
     def with_lengths(self, length: np.ndarray) -> "FlatTree":
-        """The same topology with new branch lengths."""
+        """The same topology with new branch lengths (exact: no rounding recorded)."""
         return FlatTree(self.parent, length, self.tip_names, self.node_labels)
 
     def tips_below(self) -> list[np.ndarray]:
@@ -169,6 +201,55 @@ def covariance(tree: FlatTree) -> np.ndarray:
                 cov[np.ix_(tb, ta)] = h[v]
     cov[np.diag_indices(n)] = h[:n]
     return cov
+
+
+# Tree heights the models can start from. Variances are rate x length; the default
+# rate priors scale with 1 / height, so the numbers stay far inside double precision
+# (about 1e-308 to 1e308) for any height in this range and trait values within
+# traits.VALUE_RANGE. Dated trees in years (up to ~4e9) and substitution trees
+# (~1e-3 and up) both fit.
+HEIGHT_RANGE = (1e-12, 1e12)
+
+
+def check_scale(tree: FlatTree, source: str) -> None:
+    """Refuse a tree whose scale no model can start from.
+
+    The tree is not rescaled silently: rates are reported per unit of branch
+    length, so rescaling would change the units of the results without the user
+    knowing. Single branches of any length are fine; the tree's height (longest
+    root-to-tip distance) and root edge must lie within :data:`HEIGHT_RANGE`.
+
+    Raises
+    ------
+    InputError
+        Every branch has length zero, or the height or root edge lies outside
+        :data:`HEIGHT_RANGE`.
+    """
+    if tree.n_tips < 2:
+        return
+    height = float(tree.tip_heights().max())
+    root_edge = float(tree.length[tree.root])
+    lo, hi = HEIGHT_RANGE
+    if height == 0.0:
+        raise InputError(
+            f"{source}: every branch length is 0 (the tree has no height), so it says nothing "
+            "about how related the species are. Use a tree with branch lengths."
+        )
+    fix = (
+        "Rescale the branch lengths: convert them to other units (for example years to "
+        "millions of years), or divide every length by the tree height; rates are then "
+        "per that unit."
+    )
+    if not lo <= height <= hi:
+        raise InputError(
+            f"{source}: the tree height (longest root-to-tip distance) is {height:.3g}, outside "
+            f"the range {lo:g} to {hi:g} that the models can compute with. {fix}"
+        )
+    if root_edge > hi:
+        raise InputError(
+            f"{source}: the root edge is {root_edge:.3g}, above {hi:g}, the largest length the "
+            f"models can compute with. {fix}"
+        )
 
 
 def few_names(names: Sequence[str], k: int = 5) -> str:
@@ -222,15 +303,24 @@ def prune_to(tree: FlatTree, keep_names: Iterable[str]) -> FlatTree:
             up[i], acc[i] = p, ln[i]
         else:
             up[i], acc[i] = up[p], ln[i] + acc[p]
+    err = None
+    if tree.length_error is not None:
+        # a merged branch carries the rounding of every branch it replaces
+        le = tree.length_error
+        err = np.zeros(n)
+        err[n - 1] = le[n - 1]
+        for i in range(n - 2, -1, -1):
+            err[i] = le[i] if survive[par[i]] else le[i] + err[par[i]]
     old = np.flatnonzero(survive)
+    kept_err = None if err is None else err[old]
     new_id = np.full(n, -1, dtype=np.int64)
     new_id[old] = np.arange(old.size)
     new_par = np.where(up[old] >= 0, new_id[np.maximum(up[old], 0)], -1)
     tip_names = [tree.tip_names[i] for i in old if i < nt]
     labels = [tree.node_labels[i - nt] for i in old if i >= nt]
     if len(keep) == 1:
-        return FlatTree(np.array([-1]), np.array([acc[old[0]]]), tip_names, ())
-    return FlatTree(new_par, acc[old], tip_names, labels)
+        return FlatTree(np.array([-1]), np.array([acc[old[0]]]), tip_names, (), kept_err)
+    return FlatTree(new_par, acc[old], tip_names, labels, kept_err)
 
 
 def order_tips(tree: FlatTree, names: Sequence[str]) -> FlatTree:
@@ -259,7 +349,11 @@ def order_tips(tree: FlatTree, names: Sequence[str]) -> FlatTree:
     new_len = tree.length.copy()
     new_par[perm] = tree.parent[:nt]
     new_len[perm] = tree.length[:nt]
-    return FlatTree(new_par, new_len, names, tree.node_labels)
+    new_err = None
+    if tree.length_error is not None:
+        new_err = tree.length_error.copy()
+        new_err[perm] = tree.length_error[:nt]
+    return FlatTree(new_par, new_len, names, tree.node_labels, new_err)
 
 
 # ======================================================================== facts
@@ -270,7 +364,9 @@ class TreeFacts:
     ``rooted`` is False when the root has three or more children: a basal
     trifurcation is the usual mark of an unrooted tree written as Newick
     (common practice). ``n_polytomies`` counts internal nodes with more than two
-    children, the root included.
+    children, the root included. ``rounding`` is the largest error of a
+    root-to-tip distance that the rounding of the printed branch lengths can explain
+    (0 when the lengths are exact); the ultrametric check allows for it.
     """
 
     n_tips: int
@@ -285,6 +381,7 @@ class TreeFacts:
     min_tip_height: float
     root_edge: float
     warnings: tuple[str, ...] = ()
+    rounding: float = 0.0
 
 
 def describe_tree(tree: FlatTree, rtol: float = 1e-6) -> TreeFacts:
@@ -301,6 +398,7 @@ def describe_tree(tree: FlatTree, rtol: float = 1e-6) -> TreeFacts:
     n_zero_tips = int(zero[:nt].sum()) if tree.n_nodes > 1 else 0
     th = tree.tip_heights() if tree.n_nodes > 1 else np.zeros(1)
     ultra = tree.is_ultrametric(rtol) if tree.n_nodes > 1 else True
+    rounding = float(tree.tip_height_error().max()) if tree.n_nodes > 1 else 0.0
     warns: list[str] = []
     if not rooted:
         warns.append(
@@ -320,7 +418,9 @@ def describe_tree(tree: FlatTree, rtol: float = 1e-6) -> TreeFacts:
     if not ultra:
         warns.append(
             f"not ultrametric (root-to-tip distances range {th.min():.6g} to {th.max():.6g}, "
-            f"relative tolerance {rtol:g})."
+            f"relative tolerance {rtol:g}"
+            + (f", plus up to {rounding:.3g} for the rounding of the printed lengths" if rounding else "")
+            + ")."
         )
     return TreeFacts(
         n_tips=nt,
@@ -335,4 +435,5 @@ def describe_tree(tree: FlatTree, rtol: float = 1e-6) -> TreeFacts:
         min_tip_height=float(th.min()),
         root_edge=float(tree.length[tree.root]),
         warnings=tuple(warns),
+        rounding=rounding,
     )
