@@ -52,7 +52,7 @@ def main() -> None:
         rows.append(("scan (checks, positions)", t))
         et, t = timed(lambda: ete3.Tree(chunks[0].text, format=1, quoted_node_names=True))
         rows.append(("ete3 parse", t))
-        tree, t = timed(F._from_ete, et, chunks[0].tips)
+        tree, t = timed(F._from_ete, et, chunks[0])
         rows.append(("flatten to FlatTree", t))
         trees, t = timed(F.read_trees, path)
         rows.append(("read_trees total", t))

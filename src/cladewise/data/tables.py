@@ -104,7 +104,7 @@ def _split(body: str, sep: str, first_line: int) -> list[tuple[int, list[str]]]:
         for fields in reader:
             start = line
             line = first_line + reader.line_num
-            if not fields or all(not f.strip() for f in fields) and len(fields) <= 1:
+            if not fields or (len(fields) == 1 and not fields[0].strip()):
                 continue
             rows.append((start, fields))
     except csv.Error as exc:
@@ -161,9 +161,8 @@ def read_table(path: str | Path, separator: str | None = None) -> Table:
     notes: list[str] = []
     try:
         if sep is None:
-            sep, rows = _detect(body, first, path, notes)
-        else:
-            rows = _split(body, sep, first)
+            sep = _detect(body, first, path)
+        rows = _split(body, sep, first)
     except InputError as exc:
         raise InputError(f"{source}, {exc}") from None
     header_line, header = rows[0]
@@ -193,11 +192,11 @@ def read_table(path: str | Path, separator: str | None = None) -> Table:
     for ln, f in data:
         if len(f) != len(columns):
             raise InputError(_row_length_message(source, ln, f, len(columns), sep))
-    cells: dict[str, list[str | None]] = {c: [] for c in columns}
-    for _, f in data:
-        for c, v in zip(columns, f):
-            v = v.strip()
-            cells[c].append(None if v in MISSING else v)
+    by_column = zip(*(f for _, f in data)) if data else [[] for _ in columns]
+    cells: dict[str, list[str | None]] = {}
+    for c, raw in zip(columns, by_column):
+        stripped = [v.strip() for v in raw]
+        cells[c] = [None if v in MISSING else v for v in stripped]
     if not data:
         raise InputError(f"{source}: the trait table has a header but no rows.")
     usual = _USUAL.get(path.suffix.lower())
@@ -209,19 +208,22 @@ def read_table(path: str | Path, separator: str | None = None) -> Table:
     return Table(source, columns, cells, [ln for ln, _ in data], sep, stated, notes)
 
 
-def _detect(body: str, first: int, path: Path, notes: list[str]) -> tuple[str, list[tuple[int, list[str]]]]:
-    splits = {s: _split(body, s, first) for s in SEPARATOR_NAMES}
+def _detect(body: str, first: int, path: Path, n_lines: int = 500) -> str:
+    """The separator, judged on the first lines (rows of the wrong length further
+    down are reported by read_table)."""
+    head = "".join(body.splitlines(keepends=True)[:n_lines])
+    splits = {s: _split(head, s, first) for s in SEPARATOR_NAMES}
     candidates = [s for s, rows in splits.items() if rows and len(rows[0][1]) >= 2]
     if not candidates:
-        return ",", splits[","]  # a single column: read_table explains
+        return ","  # a single column: read_table explains
     if len(candidates) == 1:
-        return candidates[0], splits[candidates[0]]
+        return candidates[0]
     good = [s for s in candidates if _consistent(splits[s])]
     if len(good) == 1:
-        return good[0], splits[good[0]]
+        return good[0]
     usual = _USUAL.get(path.suffix.lower())
     if usual in good:
-        return usual, splits[usual]
+        return usual
     names = " and ".join(f"{SEPARATOR_NAMES[s]}s" for s in (good or candidates))
     raise InputError(
         f"line {splits[candidates[0]][0][0]}: the header can be split by {names}, and the "
@@ -292,9 +294,15 @@ _DECORATED = re.compile(
 )
 
 
+# cells that may be numbers written another way start like this (quick filter)
+_NUMBERISH = re.compile(r"[<>~\u2248\u2264\u2265]|ca?\.|[+-]?[\d.,]", re.IGNORECASE)
+
+
 def _problem(cell: str, decimal: str) -> str | None:
     """Why a cell that is not a plain number looks like one written another way
     (None: it does not look like a number at all)."""
+    if not _NUMBERISH.match(cell) or not any(ch.isdigit() for ch in cell):
+        return None
     if _THOUSANDS_POINT.fullmatch(cell) or _THOUSANDS_COMMA.fullmatch(cell) or _THOUSANDS_SPACE.fullmatch(cell):
         return "thousands"
     if _MULTI_POINT.fullmatch(cell):
@@ -341,6 +349,68 @@ def to_numbers(
         or a value outside the range the models can start from.
     """
     cells = table.cells[column]
+    vals = _plain_floats(cells) if decimal == "." else None
+    if vals is None:
+        vals = _classify(table, column, cells, decimal, must_be_numeric, row_name)
+        if vals is None:
+            return None
+    inf = np.isinf(vals)
+    if inf.any():
+        r = int(np.flatnonzero(inf)[0])
+        raise InputError(
+            f"{table.source}: column '{column}' has an infinite value at "
+            f"{_where(table, row_name, r)}. Use a finite number or leave the cell empty."
+        )
+    if check_range:
+        lo, hi = VALUE_RANGE
+        mag = np.abs(vals)
+        out = (mag > hi) | ((mag > 0) & (mag < lo))
+        if out.any():
+            r = int(np.flatnonzero(out)[0])
+            size = "large" if mag[r] > hi else "small"
+            raise InputError(
+                f"{table.source}: column '{column}' holds {vals[r]:.3g} at "
+                f"{_where(table, row_name, r)}, too {size} for the models to start from (they "
+                f"compute with values from {lo:g} to {hi:g}). Rescale the column (convert its "
+                "units, e.g. grams to kilograms) or log-transform it."
+            )
+    return vals
+
+
+def _plain_floats(cells: list[str | None]) -> np.ndarray | None:
+    """Fast path: every given cell is a plain number with a decimal point (None
+    when any is not, and the cells go through :func:`_classify`)."""
+    vals = np.full(len(cells), np.nan)
+    for r, c in enumerate(cells):
+        if c is None:
+            continue
+        if "_" in c:  # float() would read 1_000
+            return None
+        try:
+            vals[r] = float(c)
+        except ValueError:
+            return None
+    if np.isnan(vals).sum() != sum(c is None for c in cells):
+        return None  # a cell such as 'NAN' that float() reads as not-a-number
+    return vals
+
+
+def _where(table: Table, row_name: Callable[[int], str], r: int) -> str:
+    who = row_name(r)
+    return f"line {table.lines[r]}" + (f" ({who})" if who else "")
+
+
+def _classify(
+    table: Table,
+    column: str,
+    cells: list[str | None],
+    decimal: str,
+    must_be_numeric: str,
+    row_name: Callable[[int], str],
+) -> np.ndarray | None:
+    """Cell by cell: the numbers, or None for a text column. A number column with
+    any other cell stops with the first one, preferring cells that look like
+    numbers written another way (they explain the whole column)."""
     numbers = _NUM if decimal == "." else _NUM_COMMA
     vals = np.full(len(cells), np.nan)
     first_bad: tuple[int, str, str | None] | None = None
@@ -350,7 +420,7 @@ def to_numbers(
         if c is None:
             continue
         if numbers.fullmatch(c):
-            vals[r] = float(c.replace(",", ".")) if decimal == "," else float(c)
+            vals[r] = float(c.replace(",", "."))
             n_num += 1
             continue
         if _INF.fullmatch(c):
@@ -363,64 +433,41 @@ def to_numbers(
         n_bad += 1
         if first_bad is None or (first_bad[2] is None and why is not None):
             first_bad = (r, c, why)
-    if n_bad and n_num == 0 and not must_be_numeric:
+    if first_bad is None:
+        return vals
+    if n_num == 0 and not must_be_numeric:
         return None  # a text column: names, codes
-    def where(r: int) -> str:
-        who = row_name(r)
-        return f"line {table.lines[r]}" + (f" ({who})" if who else "")
-
-    if first_bad is not None:
-        r, c, why = first_bad
-        head = f"{table.source}: column '{column}' at {where(r)} holds '{c}'"
-        more = f" ({n_bad} cells of this column are not plain numbers.)" if n_bad > 1 else ""
-        if why == "thousands":
-            fix = ": a number with thousands separators. Write numbers without them (1037.5, not 1,037.5)."
-        elif why == "comma3":
-            fix = (
-                ": the comma is either a thousands separator (1037) or a decimal comma (1.037). "
-                "Write the number without thousands separators and with a decimal point, or set "
-                "decimal = \",\" in [data] if the table uses decimal commas."
-            )
-        elif why == "decimal_comma":
-            fix = (
-                ": a number with a decimal comma. Set decimal = \",\" in [data] to read decimal "
-                "commas, or write the numbers with decimal points (2.5, not 2,5)."
-            )
-        elif why == "decorated":
-            fix = (
-                ", not a plain number: units, bounds (<, >) and 'about' signs belong in the column "
-                "name or a notes column. Write the number alone, or leave the cell empty (or NA) "
-                "when the value is missing."
-            )
-        elif why == "decimal_point":
-            fix = (
-                ": a decimal point in a table read with decimal commas (decimal = \",\"). Use one "
-                "decimal mark throughout the table."
-            )
-        else:
-            reason = f" It must hold numbers: {must_be_numeric}." if must_be_numeric and n_num == 0 else ""
-            fix = (
-                f", a non-numeric value.{reason} Use a number, or leave the cell empty (or NA) "
-                "when the value is missing."
-            )
-        raise InputError(head + fix + more)
-    inf = np.isinf(vals)
-    if inf.any():
-        r = int(np.flatnonzero(inf)[0])
-        raise InputError(
-            f"{table.source}: column '{column}' has an infinite value at {where(r)}. Use a finite "
-            "number or leave the cell empty."
+    r, c, why = first_bad
+    head = f"{table.source}: column '{column}' at {_where(table, row_name, r)} holds '{c}'"
+    more = f" ({n_bad} cells of this column are not plain numbers.)" if n_bad > 1 else ""
+    if why == "thousands":
+        fix = ": a number with thousands separators. Write numbers without them (1037.5, not 1,037.5)."
+    elif why == "comma3":
+        fix = (
+            ": the comma is either a thousands separator (1037) or a decimal comma (1.037). "
+            "Write the number without thousands separators and with a decimal point, or set "
+            "decimal = \",\" in [data] if the table uses decimal commas."
         )
-    if check_range:
-        lo, hi = VALUE_RANGE
-        mag = np.abs(vals)
-        out = (mag > hi) | ((mag > 0) & (mag < lo))
-        if out.any():
-            r = int(np.flatnonzero(out)[0])
-            size = "large" if mag[r] > hi else "small"
-            raise InputError(
-                f"{table.source}: column '{column}' holds {vals[r]:.3g} at {where(r)}, too {size} "
-                f"for the models to start from (they compute with values from {lo:g} to {hi:g}). "
-                "Rescale the column (convert its units, e.g. grams to kilograms) or log-transform it."
-            )
-    return vals
+    elif why == "decimal_comma":
+        fix = (
+            ": a number with a decimal comma. Set decimal = \",\" in [data] to read decimal "
+            "commas, or write the numbers with decimal points (2.5, not 2,5)."
+        )
+    elif why == "decorated":
+        fix = (
+            ", not a plain number: units, bounds (<, >) and 'about' signs belong in the column "
+            "name or a notes column. Write the number alone, or leave the cell empty (or NA) "
+            "when the value is missing."
+        )
+    elif why == "decimal_point":
+        fix = (
+            ": a decimal point in a table read with decimal commas (decimal = \",\"). Use one "
+            "decimal mark throughout the table."
+        )
+    else:
+        reason = f" It must hold numbers: {must_be_numeric}." if must_be_numeric and n_num == 0 else ""
+        fix = (
+            f", a non-numeric value.{reason} Use a number, or leave the cell empty (or NA) "
+            "when the value is missing."
+        )
+    raise InputError(head + fix + more)
