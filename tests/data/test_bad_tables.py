@@ -288,3 +288,17 @@ def test_summary_reports_separator_and_rows(tmp_path):
     _assert_words(text, ["3 rows read", "separated by tabs (detected)", "decimal point"])
     assert "named .csv but its columns are separated by tabs" in text
     assert summary.to_dict()["separator"] == "tab" and summary.to_dict()["n_rows"] == 3
+
+
+def test_spreadsheet_separator_line(tmp_path):
+    text = "sep=;\nspecies;mass\nA;1,5\nB;2\n"
+    td = read_traits(_write(tmp_path, "x.csv", text), decimal=",")
+    ref = _pandas(text, sep=";", decimal=",", skiprows=1)
+    np.testing.assert_allclose(td.column("mass"), ref["mass"])
+    assert td.separator == ";"
+    _assert_words(_error(_write(tmp_path, "y.csv", text), separator="tab"), ["line 1", "sep=", "Remove one"])
+
+
+def test_typographic_minus(tmp_path):
+    message = _error(_write(tmp_path, "m.csv", "species,x\nA,1.5\nB,\u22122.5\n"))
+    _assert_words(message, ["line 3", "'\u22122.5'", "typographic minus", "(-2.5)"])

@@ -154,11 +154,22 @@ def read_table(path: str | Path, separator: str | None = None) -> Table:
     skip = 0
     while skip < len(lines) and (lines[skip].startswith("#") or not lines[skip].strip()):
         skip += 1
+    notes: list[str] = []
+    # Spreadsheets may write their separator on a first line of its own: "sep=;"
+    hint = re.fullmatch(r"sep=(.)\s*", lines[skip]) if skip < len(lines) else None
+    if hint is not None and hint.group(1) in SEPARATOR_NAMES:
+        if sep is not None and sep != hint.group(1):
+            raise InputError(
+                f"{source}, line {skip + 1}: the file declares its separator as "
+                f"{SEPARATOR_NAMES[hint.group(1)]} (sep=...) but separator says "
+                f"{SEPARATOR_NAMES[sep]}. Remove one of the two."
+            )
+        sep = hint.group(1)
+        skip += 1
     body = "".join(lines[skip:])
     if not body.strip():
         raise InputError(f"{source}: the trait table is empty (no header line). Add a header and rows.")
     first = skip + 1
-    notes: list[str] = []
     try:
         if sep is None:
             sep = _detect(body, first, path)
@@ -295,7 +306,7 @@ _DECORATED = re.compile(
 
 
 # cells that may be numbers written another way start like this (quick filter)
-_NUMBERISH = re.compile(r"[<>~\u2248\u2264\u2265]|ca?\.|[+-]?[\d.,]", re.IGNORECASE)
+_NUMBERISH = re.compile(r"[<>~\u2248\u2264\u2265\u2212\u2013]|ca?\.|[+-]?[\d.,]", re.IGNORECASE)
 
 
 def _problem(cell: str, decimal: str) -> str | None:
@@ -315,6 +326,9 @@ def _problem(cell: str, decimal: str) -> str | None:
         return "decimal_point"
     if _DECORATED.fullmatch(cell):
         return "decorated"
+    if cell[0] in "\u2212\u2013" and _problem(cell[1:], decimal) in (None, "decimal_comma"):
+        if (_NUM if decimal == "." else _NUM_COMMA).fullmatch(cell[1:]):
+            return "minus"
     return None
 
 
@@ -458,6 +472,11 @@ def _classify(
             ", not a plain number: units, bounds (<, >) and 'about' signs belong in the column "
             "name or a notes column. Write the number alone, or leave the cell empty (or NA) "
             "when the value is missing."
+        )
+    elif why == "minus":
+        fix = (
+            ": a typographic minus or dash sign instead of the ASCII hyphen-minus. Write the "
+            f"number with '-' ({'-' + c[1:]})."
         )
     elif why == "decimal_point":
         fix = (
