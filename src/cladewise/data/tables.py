@@ -112,18 +112,23 @@ def _split(body: str, sep: str, first_line: int) -> list[tuple[int, list[str]]]:
     return rows
 
 
-def _trailing_empty(rows: list[tuple[int, list[str]]], n_header: int) -> bool:
-    """Every row carries one separator too many at its end (an empty last cell)."""
-    return all(len(f) == n_header + 1 and not f[-1].strip() for _, f in rows)
+def _trailing(header: list[str], data: list[tuple[int, list[str]]]) -> str | None:
+    """Whether every line ends with one separator too many: "column" when the
+    header does too (an empty column without a name), "cell" when only the data
+    rows do, None otherwise."""
+    n = len(header)
+    if not data:
+        return None
+    if not header[-1].strip() and all(len(f) == n and not f[-1].strip() for _, f in data):
+        return "column"
+    if all(len(f) == n + 1 and not f[-1].strip() for _, f in data):
+        return "cell"
+    return None
 
 
 def _consistent(split: list[tuple[int, list[str]]]) -> bool:
-    header = split[0][1]
-    n = len(header)
-    data = split[1:]
-    if not header[-1].strip() and all(len(f) == n and not f[-1].strip() for _, f in data):
-        return True
-    return all(len(f) == n for _, f in data) or _trailing_empty(data, n)
+    header, data = split[0][1], split[1:]
+    return _trailing(header, data) is not None or all(len(f) == len(header) for _, f in data)
 
 
 def read_table(path: str | Path, separator: str | None = None) -> Table:
@@ -156,15 +161,15 @@ def read_table(path: str | Path, separator: str | None = None) -> Table:
         skip += 1
     notes: list[str] = []
     # Spreadsheets may write their separator on a first line of its own: "sep=;"
-    hint = re.fullmatch(r"sep=(.)\s*", lines[skip]) if skip < len(lines) else None
-    if hint is not None and hint.group(1) in SEPARATOR_NAMES:
-        if sep is not None and sep != hint.group(1):
+    declared = re.fullmatch(r"sep=(.)\s*", lines[skip]) if skip < len(lines) else None
+    if declared is not None and declared.group(1) in SEPARATOR_NAMES:
+        if sep is not None and sep != declared.group(1):
             raise InputError(
                 f"{source}, line {skip + 1}: the file declares its separator as "
-                f"{SEPARATOR_NAMES[hint.group(1)]} (sep=...) but separator says "
+                f"{SEPARATOR_NAMES[declared.group(1)]} (sep=...) but separator says "
                 f"{SEPARATOR_NAMES[sep]}. Remove one of the two."
             )
-        sep = hint.group(1)
+        sep = declared.group(1)
         skip += 1
     body = "".join(lines[skip:])
     if not body.strip():
@@ -189,15 +194,15 @@ def read_table(path: str | Path, separator: str | None = None) -> Table:
             f"{source}, line {header_line}: the header has a single column ({header[0].strip()[:40]!r}) "
             f"when split by {name}s; a trait table needs a species column and trait columns.{hint}"
         )
-    n = len(header)
-    if not header[-1].strip() and all(len(f) == n and not f[-1].strip() for _, f in data):
+    trailing = _trailing(header, data)
+    if trailing == "column":
         notes.append(
             f"every line ends with a {name} (an empty last column without a name); that column was ignored."
         )
         header = header[:-1]
-        data = [(ln, f[:-1]) for ln, f in data]
-    elif data and _trailing_empty(data, n):
+    elif trailing == "cell":
         notes.append(f"every row ends with a {name} (an empty last cell); it was ignored.")
+    if trailing is not None:
         data = [(ln, f[:-1]) for ln, f in data]
     columns = _check_header(header, header_line, source)
     for ln, f in data:
