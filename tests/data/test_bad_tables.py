@@ -302,3 +302,8 @@ def test_spreadsheet_separator_line(tmp_path):
 def test_typographic_minus(tmp_path):
     message = _error(_write(tmp_path, "m.csv", "species,x\nA,1.5\nB,\u22122.5\n"))
     _assert_words(message, ["line 3", "'\u22122.5'", "typographic minus", "(-2.5)"])
+
+
+def test_no_numeric_column_names_the_text_columns(tmp_path):
+    message = _error(_write(tmp_path, "n.csv", "species,a\nA,one\nB,two\n"))
+    _assert_words(message, ["no numeric trait columns", "'a'", "'one'", "line 2"])

@@ -260,6 +260,18 @@ def _species_column(table: Table, species_col: str) -> pd.Series:
     return sp
 
 
+def _no_traits_message(table: Table, text_cols: Sequence[str]) -> str:
+    msg = f"{table.source}: no numeric trait columns found."
+    if text_cols:
+        col = text_cols[0]
+        r, cell = next((r, c) for r, c in enumerate(table.cells[col]) if c is not None)
+        msg += (
+            f" Columns {', '.join(repr(c) for c in text_cols[:8])} hold text (e.g. '{cell}' in "
+            f"'{col}' at line {table.lines[r]}). Trait columns must hold plain numbers."
+        )
+    return msg
+
+
 def _text_frame(table: Table, columns: Sequence[str]) -> pd.DataFrame:
     return pd.DataFrame({c: pd.Series(table.cells[c], dtype=object) for c in columns})
 
@@ -370,7 +382,7 @@ def read_species_table(
     _check_log_names(log, {t: 1 for t in traits}, source)
     N, k = len(sp), len(traits)
     if k == 0:
-        raise InputError(f"{source}: no numeric trait columns found.")
+        raise InputError(_no_traits_message(table, text_cols))
     mean = np.column_stack([numeric[t] for t in traits])
     se = np.full((N, k), np.nan)
     n = np.full((N, k), np.nan)
@@ -470,7 +482,7 @@ def read_specimen_table(
     )
     traits = list(numeric)
     if not traits:
-        raise InputError(f"{source}: no numeric trait columns found.")
+        raise InputError(_no_traits_message(table, text_cols))
     _check_log_names(log, numeric, source)
 
     def where(r: int) -> str:
