@@ -215,3 +215,18 @@ def test_tree_file_encodings(tmp_path, content, words):
         read_trees(path)
     for w in words:
         assert w in str(err.value)
+
+
+def test_nexus_translate_label_not_in_taxa_block(tmp_path):
+    path = _write(
+        tmp_path,
+        "z.nex",
+        "#NEXUS\nbegin taxa;\n dimensions ntax=3;\n taxlabels A B C;\nend;\n"
+        "begin trees;\n translate 1 A, 2 B, 3 Zed;\n tree t1 = ((1:1,2:1):1,3:2);\nend;\n",
+    )
+    with pytest.raises(dendropy.utility.error.DataParseError):  # dendropy refuses it too
+        dendropy.Tree.get(path=str(path), schema="nexus")
+    with pytest.raises(InputError) as err:
+        read_trees(path)
+    for w in ("z.nex", "line 7", "'Zed'", "translate table"):
+        assert w in str(err.value)
