@@ -25,7 +25,8 @@ import numpy as np
 
 from cladewise.studies.calibration import run_calibration
 from cladewise.inference.sampling import SamplingOptions
-from cladewise.data.trees import FlatTree, parse_newick
+from cladewise.data.trees import FlatTree
+from cladewise.data.treefiles import parse_newick
 
 
 def coalescent_tree(n: int, seed: int) -> FlatTree:

@@ -22,7 +22,8 @@ from pathlib import Path
 from cladewise.report.study_figures import save_power_figure
 from cladewise.studies.power import run_power_study
 from cladewise.inference.sampling import SamplingOptions
-from cladewise.data.trees import FlatTree, parse_newick
+from cladewise.data.trees import FlatTree
+from cladewise.data.treefiles import parse_newick
 
 sys.path.insert(0, str(Path(__file__).parent))
 from bench_calibration import coalescent_tree  # noqa: E402

@@ -16,6 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
+from cladewise.data import treefiles as F
 from cladewise.data import trees as T
 
 
@@ -47,13 +48,13 @@ def main() -> None:
         path = Path(d) / "big.nwk"
         path.write_text(text)
         rows = []
-        chunks, t = timed(T._scan_newick, text, "big.nwk")
+        chunks, t = timed(F._scan_newick, text, "big.nwk")
         rows.append(("scan (checks, positions)", t))
         et, t = timed(lambda: ete3.Tree(chunks[0].text, format=1, quoted_node_names=True))
         rows.append(("ete3 parse", t))
-        tree, t = timed(T._from_ete, et, chunks[0].tips)
+        tree, t = timed(F._from_ete, et, chunks[0])
         rows.append(("flatten to FlatTree", t))
-        trees, t = timed(T.read_trees, path)
+        trees, t = timed(F.read_trees, path)
         rows.append(("read_trees total", t))
         tree = trees[0]
         _, t = timed(T.describe_tree, tree)
@@ -63,7 +64,7 @@ def main() -> None:
         rows.append(("prune_to half the tips", t))
         _, t = timed(T.order_tips, pruned, sorted(keep))
         rows.append(("order_tips", t))
-        _, t = timed(T.format_newick, tree)
+        _, t = timed(F.format_newick, tree)
         rows.append(("format_newick", t))
     print(f"{n} tips, {len(text) / 1e6:.1f} MB of Newick")
     print(f"{'step':<28} {'seconds':>8}")

@@ -19,7 +19,9 @@ from pathlib import Path
 
 import numpy as np
 
-from cladewise.data.trees import FlatTree, covariance, format_newick, format_nexus, parse_newick
+from cladewise.data.trees import FlatTree, covariance
+
+from cladewise.data.treefiles import format_newick, format_nexus, parse_newick
 
 SEED = 20240611
 HERE = Path(__file__).resolve().parent

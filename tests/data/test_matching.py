@@ -15,7 +15,8 @@ import pytest
 from cladewise.errors import InputError
 from cladewise.data.matching import match_names, name_key
 from cladewise.data.traits import read_species_table
-from cladewise.data.trees import covariance, parse_newick
+from cladewise.data.trees import covariance
+from cladewise.data.treefiles import parse_newick
 
 TREE = "(((Aus_bus:1,Aus_cus:1):1,Bus_dus:2):1,(Cus_eus:2.5,Dus_fus:2.5):0.5);"
 

@@ -13,15 +13,11 @@ import numpy as np
 import pytest
 
 from cladewise.errors import InputError
-from cladewise.data.trees import (
-    FlatTree,
-    covariance,
-    describe_tree,
+from cladewise.data.trees import FlatTree, covariance, describe_tree, order_tips, prune_to
+from cladewise.data.treefiles import (
     format_newick,
     format_nexus,
-    order_tips,
     parse_newick,
-    prune_to,
     read_tree,
     read_trees,
 )

@@ -291,7 +291,7 @@ def test_command_line_arguments():
 
 def test_spec_without_tree_sample(tmp_path):
     tree = random_tree(5, np.random.default_rng(0), True)
-    from cladewise.data.trees import format_newick
+    from cladewise.data.treefiles import format_newick
 
     (tmp_path / "t.nwk").write_text(format_newick(tree))
     (tmp_path / "d.csv").write_text("species,a,b\n" + "".join(f"{n},{i},{i * i}\n" for i, n in enumerate(tree.tip_names)))

@@ -18,7 +18,8 @@ import pytest
 from treegen import random_tree
 
 from cladewise.errors import InputError
-from cladewise.data.trees import FlatTree, format_newick
+from cladewise.data.trees import FlatTree
+from cladewise.data.treefiles import format_newick
 
 EVIL = "<script>alert(1)</script>"
 FIGURES = ["tree", "posterior_densities", "species_scatter", "contrasts", "predictive_check",

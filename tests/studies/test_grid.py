@@ -23,7 +23,7 @@ import pytest
 from cladewise.errors import InputError
 from cladewise.studies.grid import STATUS_NAME, is_finished, load_grid, run_grid
 from cladewise.studies.simulate import simulate_traits
-from cladewise.data.trees import format_newick
+from cladewise.data.treefiles import format_newick
 
 from treegen import random_tree
 

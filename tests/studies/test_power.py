@@ -20,7 +20,8 @@ from cladewise.report.study_figures import save_power_figure
 from cladewise.studies.power import PowerResult, _power_table, measurement_se, run_power_study
 from cladewise.cli.power import load_power_spec
 from cladewise.inference.sampling import SamplingOptions
-from cladewise.data.trees import FlatTree, parse_newick
+from cladewise.data.trees import FlatTree
+from cladewise.data.treefiles import parse_newick
 
 
 # ------------------------------------------------------------------ trees

@@ -97,7 +97,7 @@ def load_power_spec(path: str | Path) -> PowerSpec:
     from cladewise.studies.power import _pair, _traits, measurement_se
     from cladewise.studies.refit import check_study_tree
     from cladewise.inference.sampling import SamplingOptions
-    from cladewise.data.trees import read_tree
+    from cladewise.data.treefiles import read_tree
 
     path = Path(path)
     try:

@@ -33,7 +33,7 @@ from cladewise.data.summary import DataSummary, summarize
 from cladewise.errors import InputError
 from cladewise.data.matching import MatchResult, match_names
 from cladewise.data.traits import read_traits
-from cladewise.data.trees import read_trees
+from cladewise.data.treefiles import read_trees
 
 __all__ = ["DataSpec", "Spec", "load_spec", "load_data", "prepare_data"]
 

@@ -159,4 +159,4 @@ def match_names(
 def _align(tree: FlatTree, tree_names: dict[str, str], kept: list[str]) -> FlatTree:
     pruned = prune_to(tree, [tree_names[s] for s in kept])
     ordered = order_tips(pruned, [tree_names[s] for s in kept])
-    return FlatTree(ordered.parent, ordered.length, kept, ordered.node_labels)
+    return FlatTree(ordered.parent, ordered.length, kept, ordered.node_labels, ordered.length_error)

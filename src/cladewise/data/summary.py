@@ -58,6 +58,10 @@ class DataSummary:
     n_trees_ultrametric: int | None = None
     trees_source: str | None = None
     warnings: list[str] = field(default_factory=list)
+    separator: str = "comma"  # the table's column separator, as a word
+    separator_stated: bool = False  # stated by the user (else detected)
+    decimal: str = "."
+    n_rows: int = 0  # data rows read from the table
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data (for JSON)."""
@@ -69,10 +73,11 @@ class DataSummary:
         out: list[str] = []
         out.append(f"Tree: {self.tree_source}")
         ultra = "yes" if t.ultrametric else "no"
+        rounding = f", plus {t.rounding:.3g} for rounded lengths" if t.rounding else ""
         out.append(
             f"  {self.n_tree_tips} tips in the file, {t.n_tips} analysed; "
             f"{'rooted' if t.rooted else 'unrooted (basal polytomy)'}; ultrametric: {ultra} "
-            f"(relative tolerance {t.rtol:g}); height {t.height:.6g}"
+            f"(relative tolerance {t.rtol:g}{rounding}); height {t.height:.6g}"
             + (f" (tips from {t.min_tip_height:.6g})" if not t.ultrametric else "")
             + (f"; root edge {t.root_edge:.6g}" if t.root_edge else "")
         )
@@ -87,6 +92,11 @@ class DataSummary:
                 )
             )
         out.append(f"Traits: {self.traits_source}")
+        out.append(
+            f"  {self.n_rows} rows read; columns separated by {self.separator}s "
+            f"({'as stated' if self.separator_stated else 'detected'}); decimal "
+            f"{'comma' if self.decimal == ',' else 'point'}"
+        )
         kind = (
             f"specimen table, {self.n_specimens} specimens" if self.specimens else "species table"
         )
@@ -137,6 +147,7 @@ def summarize(
     td = match.traits
     cover: list[TraitCoverage] = []
     warns: list[str] = list(extra_warnings or [])
+    warns += [f"table: {n}" for n in match.traits.notes]
     warns += [f"tree: {w}" for w in facts.warnings]
     N = td.n_species
     for j, name in enumerate(td.traits):
@@ -188,4 +199,8 @@ def summarize(
         n_trees_ultrametric=n_ultra,
         trees_source=trees_source,
         warnings=warns,
+        separator=td.separator_name,
+        separator_stated=td.separator_stated,
+        decimal=td.decimal,
+        n_rows=td.n_rows,
     )

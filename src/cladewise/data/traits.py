@@ -12,14 +12,15 @@ Two kinds of table are read:
 
 Every numeric column is kept as a candidate trait (a model may use any of them as
 response or predictor); a column whose every value is text (a family name, a
-specimen code) is kept aside in :attr:`TraitData.extra`. Missing cells are NaN.
-All checks happen here, once; later code trusts the arrays.
+specimen code) is kept aside in :attr:`TraitData.extra`. A column with any number
+in it, or that another column refers to (``x`` of ``x_se``), must hold only plain
+numbers: decimal commas, thousands separators or units stop the run with the cell
+(see :mod:`cladewise.data.tables`). Missing cells are NaN. All checks happen here,
+once; later code trusts the arrays.
 """
 
 from __future__ import annotations
 
-import csv
-import io
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Sequence
@@ -27,13 +28,10 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
+from cladewise.data.tables import SEPARATOR_NAMES, Table, read_table, to_numbers
 from cladewise.errors import InputError
 
 __all__ = ["TraitData", "read_species_table", "read_specimen_table", "read_traits"]
-
-# tokens read as missing cells (pandas' defaults are wider than users expect, e.g.
-# they include "NA" but also "null"; these are the ones people type in tables)
-_MISSING = ["", "NA", "N/A", "NaN", "nan", "na", "?", "-", "."]
 
 
 @dataclass(frozen=True, eq=False)
@@ -65,6 +63,16 @@ class TraitData:
     extra : DataFrame or None
         Non-numeric columns, one row per species (first value per species for
         specimen tables).
+    separator : str
+        The column separator of the file (``","``, ``";"`` or ``"\t"``).
+    separator_stated : bool
+        True when the user stated it, False when it was detected.
+    decimal : str
+        The decimal mark the numbers were read with.
+    n_rows : int
+        Data rows read from the file (specimens for a specimen table).
+    notes : tuple of str
+        What was noticed in the file and handled (for the data summary).
     """
 
     species: list[str]
@@ -77,6 +85,16 @@ class TraitData:
     log_traits: list[str] = field(default_factory=list)
     source: str = ""
     extra: pd.DataFrame | None = None
+    separator: str = ","
+    separator_stated: bool = False
+    decimal: str = "."
+    n_rows: int = 0
+    notes: tuple[str, ...] = ()
+
+    @property
+    def separator_name(self) -> str:
+        """The separator as a word: comma, semicolon or tab."""
+        return SEPARATOR_NAMES.get(self.separator, repr(self.separator))
 
     @property
     def n_species(self) -> int:
@@ -88,6 +106,13 @@ class TraitData:
         try:
             return self.traits.index(trait)
         except ValueError:
+            if self.extra is not None and trait in self.extra.columns:
+                first = self.extra[trait].dropna()
+                shown = f" (e.g. '{first.iloc[0]}')" if len(first) else ""
+                raise InputError(
+                    f"column '{trait}' of {self.source or 'the table'} holds text{shown}, not "
+                    f"numbers, so it cannot be a trait. Numeric columns are: {', '.join(self.traits)}."
+                ) from None
             raise InputError(
                 f"no trait column '{trait}' in {self.source or 'the table'}. "
                 f"Numeric columns are: {', '.join(self.traits)}.{_did_you_mean(trait, self.traits)}"
@@ -167,104 +192,100 @@ def _did_you_mean(word: str, options: Sequence[str]) -> str:
     return f" Did you mean {', '.join(repr(c) for c in close)}?" if close else ""
 
 
-def _read_table(path: Path) -> tuple[pd.DataFrame, int]:
-    """Read a CSV or TSV as text cells. Returns the table and the file line of its
-    header (leading lines starting with '#' are comments)."""
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise InputError(f"trait table not found: {path}. Check the path.") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"cannot read trait table {path}: {exc}") from None
-    lines = text.splitlines(keepends=True)
-    skip = 0
-    while skip < len(lines) and (lines[skip].startswith("#") or not lines[skip].strip()):
-        skip += 1
-    body = "".join(lines[skip:])
-    if not body.strip():
-        raise InputError(f"{path}: the trait table is empty.")
-    ext = path.suffix.lower()
-    if ext in (".tsv", ".tab"):
-        sep = "\t"
-    elif ext == ".csv":
-        sep = ","
-    else:
-        try:
-            sep = csv.Sniffer().sniff(body[:4096], delimiters=",\t;").delimiter
-        except csv.Error:
-            sep = ","
-    try:
-        df = pd.read_csv(
-            io.StringIO(body),
-            sep=sep,
-            dtype=str,
-            keep_default_na=False,
-            na_values=_MISSING,
-            skipinitialspace=True,
+def _open_table(path: Path, separator: str | None, decimal: str) -> Table:
+    if decimal not in (".", ","):
+        raise InputError(f"decimal must be \".\" or \",\", not {decimal!r}.")
+    table = read_table(path, separator)
+    if decimal == "," and table.separator == ",":
+        raise InputError(
+            f"{table.source}: decimal = \",\" needs columns separated by semicolons or tabs, "
+            "but this table is comma-separated. Save it with ';' or tab separators, or use "
+            "decimal points."
         )
-    except (pd.errors.ParserError, ValueError) as exc:
-        raise InputError(f"{path}: not a readable {'TSV' if sep == chr(9) else 'CSV'} table: {exc}") from None
-    df.columns = [str(c).strip() for c in df.columns]
-    return df, skip + 1
-
-
-def _line(header_line: int, row: int) -> int:
-    return header_line + 1 + row
+    return table
 
 
 def _numeric_columns(
-    df: pd.DataFrame, skip: set[str], source: str, header_line: int, species_col: str
+    table: Table,
+    species_col: str,
+    decimal: str,
+    suffixes: Sequence[str],
+    log: Sequence[str],
+    who,
 ) -> tuple[dict[str, np.ndarray], list[str]]:
-    """Convert columns to float. A column with any number must be all numbers."""
+    """Convert columns to float; text columns (no number in them) are returned by
+    name. A column that another column refers to, or that is to be logged, must be
+    numeric."""
+    cols = [c for c in table.columns if c != species_col]
+    present = set(cols)
     numeric: dict[str, np.ndarray] = {}
     text_cols: list[str] = []
-    for col in df.columns:
-        if col in skip:
-            continue
-        raw = df[col]
-        vals = pd.to_numeric(raw.str.strip(), errors="coerce").to_numpy(dtype=float)
-        given = raw.notna().to_numpy()
-        bad = given & np.isnan(vals)
-        if given.any() and bad.all():
+    logged = set(log) | {t + s for t in log for s in suffixes}
+    for col in cols:
+        why = ""
+        refs = [col + s for s in suffixes if col + s in present]
+        base = [col[: -len(s)] for s in suffixes if col.endswith(s) and col[: -len(s)] in present]
+        if refs:
+            why = f"'{refs[0]}' refers to it as a trait"
+        elif base:
+            why = f"it belongs to the trait '{base[0]}'"
+        elif col in log:
+            why = "it is listed in `log`"
+        vals = to_numbers(table, col, decimal, who, must_be_numeric=why, check_range=col not in logged)
+        if vals is None:
             text_cols.append(col)
             continue
-        if bad.any():
-            r = int(np.flatnonzero(bad)[0])
-            raise InputError(
-                f"{source}: column '{col}' has a non-numeric value '{raw.iloc[r]}' at line "
-                f"{_line(header_line, r)} (species '{df[species_col].iloc[r]}'). Use a number, "
-                f"or leave the cell empty (or NA) when the value is missing."
-            )
-        inf = np.isinf(vals)
-        if inf.any():
-            r = int(np.flatnonzero(inf)[0])
-            raise InputError(
-                f"{source}: column '{col}' has an infinite value at line {_line(header_line, r)} "
-                f"(species '{df[species_col].iloc[r]}'). Use a finite number or leave the cell empty."
-            )
-        if not given.any():
-            raise InputError(
-                f"{source}: column '{col}' has no values. Fill it or remove the column."
-            )
+        if np.all(np.isnan(vals)):
+            raise InputError(f"{table.source}: column '{col}' has no values. Fill it or remove the column.")
         numeric[col] = vals
     return numeric, text_cols
 
 
-def _species_column(df: pd.DataFrame, species_col: str, source: str, header_line: int) -> pd.Series:
-    if species_col not in df.columns:
+def _species_column(table: Table, species_col: str) -> pd.Series:
+    source, columns = table.source, table.columns
+    if species_col not in columns:
         raise InputError(
             f"{source}: no species column '{species_col}'. Columns are: "
-            f"{', '.join(df.columns)}.{_did_you_mean(species_col, list(df.columns))} "
+            f"{', '.join(columns)}.{_did_you_mean(species_col, columns)} "
             "Name the species column with `species` in the [data] section of the spec."
         )
-    sp = df[species_col].fillna("").astype(str).str.strip().str.strip("'\"").str.strip()
+    sp = pd.Series([c or "" for c in table.cells[species_col]], dtype=object)
+    sp = sp.str.strip().str.strip("'\"").str.strip()
     empty = np.flatnonzero(sp.to_numpy() == "")
     if empty.size:
         raise InputError(
-            f"{source}: empty species name at line {_line(header_line, int(empty[0]))}. "
+            f"{source}: empty species name at line {table.lines[int(empty[0])]}. "
             "Every row needs a species name."
         )
     return sp
+
+
+def _no_traits_message(table: Table, text_cols: Sequence[str]) -> str:
+    msg = f"{table.source}: no numeric trait columns found."
+    if text_cols:
+        col = text_cols[0]
+        r, cell = next((r, c) for r, c in enumerate(table.cells[col]) if c is not None)
+        msg += (
+            f" Columns {', '.join(repr(c) for c in text_cols[:8])} hold text (e.g. '{cell}' in "
+            f"'{col}' at line {table.lines[r]}). Trait columns must hold plain numbers."
+        )
+    return msg
+
+
+def _text_frame(table: Table, columns: Sequence[str]) -> pd.DataFrame:
+    return pd.DataFrame({c: pd.Series(table.cells[c], dtype=object) for c in columns})
+
+
+def _file_facts(table: Table, decimal: str) -> dict:
+    """The TraitData fields that describe how the file was read."""
+    return dict(
+        source=table.source,
+        separator=table.separator,
+        separator_stated=table.stated,
+        decimal=decimal,
+        n_rows=table.n_rows,
+        notes=tuple(table.notes),
+    )
 
 
 def _log_values(values: np.ndarray, trait: str, source: str, where) -> np.ndarray:
@@ -295,14 +316,16 @@ def read_species_table(
     se_suffix: str = "_se",
     n_suffix: str = "_n",
     sd_suffix: str = "_sd",
+    separator: str | None = None,
+    decimal: str = ".",
 ) -> TraitData:
     """Read a table with one row per species.
 
     Parameters
     ----------
     path : str or Path
-        CSV or TSV (by extension ``.csv``/``.tsv``, otherwise sniffed). Leading
-        lines starting with ``#`` are comments.
+        A delimited UTF-8 text table (comma, semicolon or tab). Leading lines
+        starting with ``#`` are comments.
     species : str
         Name of the species column.
     log : sequence of str
@@ -313,23 +336,30 @@ def read_species_table(
     se_suffix, n_suffix, sd_suffix : str
         Column name endings for standard error, sample size and standard deviation
         of a trait (``<trait><suffix>``). A given se wins over one from sd and n.
+    separator : str or None
+        ``","``, ``";"`` or ``"\t"`` (or comma, semicolon, tab); None or "auto":
+        detected from the header (see :func:`cladewise.data.tables.read_table`).
+    decimal : {".", ","}
+        Decimal mark of the numbers; ``","`` needs semicolon or tab separators.
 
     Raises
     ------
     InputError
-        Missing species column, duplicate species, non-numeric or infinite cells,
-        zero or negative se, negative sd, n below 1, log of a non-positive value,
-        a column without values.
+        Unreadable table (encoding, separator, duplicate column names, rows of the
+        wrong length), missing species column, duplicate species, cells of number
+        columns that are not plain numbers, infinite values or values too large or
+        small to compute with, zero or negative se, negative sd, n below 1, log of
+        a non-positive value, a column without values.
     """
     path = Path(path)
-    source = str(path)
-    df, hdr = _read_table(path)
-    sp = _species_column(df, species, source, hdr)
+    table = _open_table(path, separator, decimal)
+    source = table.source
+    sp = _species_column(table, species)
     dup = sp[sp.duplicated(keep=False)]
     if len(dup):
         names = sorted(set(dup))
         where = "; ".join(
-            f"'{nm}' at lines {', '.join(str(_line(hdr, r)) for r in np.flatnonzero(sp.to_numpy() == nm))}"
+            f"'{nm}' at lines {', '.join(str(table.lines[r]) for r in np.flatnonzero(sp.to_numpy() == nm))}"
             for nm in names[:5]
         )
         raise InputError(
@@ -337,8 +367,10 @@ def read_species_table(
             "row per species; merge the rows, or read the file as a specimen table "
             "(specimens = true)."
         )
-    numeric, text_cols = _numeric_columns(df, {species}, source, hdr, species)
     suffixes = [s for s in (se_suffix, n_suffix, sd_suffix) if s]
+    numeric, text_cols = _numeric_columns(
+        table, species, decimal, suffixes, log, lambda r: f"species '{sp.iloc[r]}'"
+    )
     # a column is a trait unless it is the se/n/sd column of another numeric column
     aux = {
         c
@@ -350,14 +382,14 @@ def read_species_table(
     _check_log_names(log, {t: 1 for t in traits}, source)
     N, k = len(sp), len(traits)
     if k == 0:
-        raise InputError(f"{source}: no numeric trait columns found.")
+        raise InputError(_no_traits_message(table, text_cols))
     mean = np.column_stack([numeric[t] for t in traits])
     se = np.full((N, k), np.nan)
     n = np.full((N, k), np.nan)
     any_se = any_n = False
 
     def where(r: int) -> str:
-        return f"line {_line(hdr, r)} (species '{sp.iloc[r]}')"
+        return f"line {table.lines[r]} (species '{sp.iloc[r]}')"
 
     for j, t in enumerate(traits):
         se_col, n_col, sd_col = t + se_suffix, t + n_suffix, t + sd_suffix
@@ -402,7 +434,7 @@ def read_species_table(
         raw = mean[:, j].copy()
         mean[:, j] = _log_values(raw, t, source, where)
         se[:, j] = se[:, j] / raw  # delta method: d log(x) = dx / x
-    extra = df[text_cols].reset_index(drop=True) if text_cols else None
+    extra = _text_frame(table, text_cols) if text_cols else None
     return TraitData(
         species=list(sp),
         traits=traits,
@@ -412,8 +444,8 @@ def read_species_table(
         within_var=None,
         specimens=None,
         log_traits=list(log),
-        source=source,
         extra=extra,
+        **_file_facts(table, decimal),
     )
 
 
@@ -421,6 +453,8 @@ def read_specimen_table(
     path: str | Path,
     species: str = "species",
     log: Sequence[str] = (),
+    separator: str | None = None,
+    decimal: str = ".",
 ) -> TraitData:
     """Read a table with one row per specimen and reduce it to species.
 
@@ -430,25 +464,29 @@ def read_specimen_table(
     (NaN, not an error). Traits in ``log`` are logged specimen by specimen before
     reducing, so the means are means of logs. Species keep their order of first
     appearance; the (logged) specimen rows are kept in :attr:`TraitData.specimens`.
+    ``separator`` and ``decimal`` are as in :func:`read_species_table`.
 
     Raises
     ------
     InputError
-        Missing species column, non-numeric or infinite cells, log of a
-        non-positive value, a column without values.
+        Unreadable table (as in :func:`read_species_table`), missing species
+        column, cells of number columns that are not plain numbers, infinite or
+        out-of-range values, log of a non-positive value, a column without values.
     """
     path = Path(path)
-    source = str(path)
-    df, hdr = _read_table(path)
-    sp = _species_column(df, species, source, hdr)
-    numeric, text_cols = _numeric_columns(df, {species}, source, hdr, species)
+    table = _open_table(path, separator, decimal)
+    source = table.source
+    sp = _species_column(table, species)
+    numeric, text_cols = _numeric_columns(
+        table, species, decimal, (), log, lambda r: f"species '{sp.iloc[r]}'"
+    )
     traits = list(numeric)
     if not traits:
-        raise InputError(f"{source}: no numeric trait columns found.")
+        raise InputError(_no_traits_message(table, text_cols))
     _check_log_names(log, numeric, source)
 
     def where(r: int) -> str:
-        return f"line {_line(hdr, r)} (species '{sp.iloc[r]}')"
+        return f"line {table.lines[r]} (species '{sp.iloc[r]}')"
 
     for t in log:
         numeric[t] = _log_values(numeric[t], t, source, where)
@@ -467,7 +505,7 @@ def read_specimen_table(
     extra = None
     if text_cols:
         extra = (
-            pd.DataFrame({"species": sp.to_numpy(), **{c: df[c].to_numpy() for c in text_cols}})
+            pd.DataFrame({"species": sp.to_numpy(), **{c: table.cells[c] for c in text_cols}})
             .groupby("species", sort=False)
             .first()
             .reindex(order)
@@ -482,8 +520,8 @@ def read_specimen_table(
         within_var=var_arr,
         specimens=rows,
         log_traits=list(log),
-        source=source,
         extra=extra,
+        **_file_facts(table, decimal),
     )
 
 
@@ -495,10 +533,20 @@ def read_traits(
     se_suffix: str = "_se",
     n_suffix: str = "_n",
     sd_suffix: str = "_sd",
+    separator: str | None = None,
+    decimal: str = ".",
 ) -> TraitData:
-    """Read a species table, or a specimen table when ``specimens`` is True."""
+    """Read a species table, or a specimen table when ``specimens`` is True
+    (arguments as in :func:`read_species_table`)."""
     if specimens:
-        return read_specimen_table(path, species=species, log=log)
+        return read_specimen_table(path, species=species, log=log, separator=separator, decimal=decimal)
     return read_species_table(
-        path, species=species, log=log, se_suffix=se_suffix, n_suffix=n_suffix, sd_suffix=sd_suffix
+        path,
+        species=species,
+        log=log,
+        se_suffix=se_suffix,
+        n_suffix=n_suffix,
+        sd_suffix=sd_suffix,
+        separator=separator,
+        decimal=decimal,
     )

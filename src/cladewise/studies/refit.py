@@ -55,7 +55,7 @@ def say(progress: Progress, message: str) -> None:
 def check_study_tree(tree: FlatTree) -> None:
     """Raise :class:`InputError` unless traits can be simulated on ``tree``."""
     if not isinstance(tree, FlatTree):
-        raise InputError("tree must be a cladewise FlatTree (read one with cladewise.data.trees.read_tree)")
+        raise InputError("tree must be a cladewise FlatTree (read one with cladewise.data.treefiles.read_tree)")
     if tree.n_tips < 4:
         raise InputError(f"the tree has {tree.n_tips} tips; a simulation study needs at least 4 species")
     if not np.all(np.isfinite(tree.length)) or np.any(tree.length < 0):

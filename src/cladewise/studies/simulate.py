@@ -64,7 +64,8 @@ import pandas as pd
 
 from cladewise.errors import InputError
 from cladewise.model.evolution import check_model_name, model_warnings, transformed_lengths
-from cladewise.data.trees import FlatTree, format_newick, read_tree
+from cladewise.data.trees import FlatTree
+from cladewise.data.treefiles import format_newick, read_tree
 
 __all__ = [
     "SimulatedData",
