@@ -21,7 +21,8 @@ import pandas as pd
 import pytest
 
 from cladewise.errors import InputError
-from cladewise.studies.grid import STATUS_NAME, is_finished, load_grid, run_grid
+from cladewise.config.grid import load_grid
+from cladewise.studies.grid import STATUS_NAME, is_finished, run_grid
 from cladewise.studies.simulate import simulate_traits
 from cladewise.data.trees import format_newick
 
@@ -84,7 +85,7 @@ def test_grid_file_fits_and_cross(tmp_path):
         ("[[fit]]\nspec = \"corr.toml\"\nsteps = 3\n", "unknown key"),
         ("[[fit]]\nname = \"x\"\nspec = \"corr.toml\"\n[[fit]]\nname = \"x\"\nspec = \"indep.toml\"\n", "more than once"),
         ("[[fit]]\nname = \"../up\"\nspec = \"corr.toml\"\n", "folder name"),
-        ("[[fit]]\nspec = \"corr.toml\"\nn_trees = 0\n", "positive whole number"),
+        ("[[fit]]\nspec = \"corr.toml\"\nn_trees = 0\n", "n_trees = 0: must be >= 1"),
         ("[sampling]\nwarmup = 3\n[[fit]]\nspec = \"corr.toml\"\n", "unknown key"),
         ("", "no fits"),
         ("[[fit]\n", "not valid TOML"),
