@@ -404,6 +404,7 @@ def read_table(
             "Write it as a section with one key per line, or inline as { key = value, ... }."
         )
     out: dict[str, Any] = {}
+    missing: list[_MissingFile] = []
     for name, v in value.items():
         key = table.keys.get(name)
         if key is None and name in table.ignored:
@@ -416,7 +417,12 @@ def read_table(
                 f"{where.prefix()}unknown key '{name}' in {where.label}{did_you_mean(name, known)}. "
                 f"Known keys: {', '.join(known) or '(none)'}. Fix the spelling or remove the key."
             )
-        out[name] = check_value(name, v, key, where)
+        try:
+            out[name] = check_value(name, v, key, where)
+        except _MissingFile as exc:
+            missing.append(exc)  # named together with any other missing file
+    if missing:
+        raise InputError(_missing_message(missing))
     for name, key in table.keys.items():
         if name in out:
             continue
@@ -490,16 +496,33 @@ def check_value(name: str, v: Any, key: Key, where: Where) -> Any:
     return v
 
 
+class _MissingFile(InputError):
+    """One named file that does not exist (read_table reports all of them at once)."""
+
+    def __init__(self, name: str, value: Any, looked: Path, where: Where) -> None:
+        self.name, self.value, self.looked, self.where = name, value, looked, where
+        super().__init__(_missing_message([self]))
+
+
+def _missing_message(missing: list[_MissingFile]) -> str:
+    where = missing[0].where
+    each = ", and ".join(f"{m.name} = {toml_value(m.value)} does not exist (looked for {m.looked})"
+                         for m in missing)
+    many = len(missing) > 1
+    return (
+        f"{where.prefix()}{where.label} {each}. Paths in "
+        f"{Path(where.file).name if where.file else 'the file'} are relative to the folder of that file "
+        f"({where.base}), not to the current folder. Fix the path{'s' if many else ''} or move the "
+        f"file{'s' if many else ''}."
+    )
+
+
 def _resolve(name: str, v: Any, key: Key, where: Where) -> Any:
     if isinstance(v, list):
         return [_resolve(name, x, key, where) for x in v]
     p = (where.base / v).resolve()
     if not p.exists():
-        raise InputError(
-            f"{where.at(name)} = {toml_value(v)}: the file does not exist (looked for {p}). Paths in "
-            f"{Path(where.file).name if where.file else 'the file'} are relative to the folder of that file "
-            f"({where.base}), not to the current folder. Fix the path or move the file."
-        )
+        raise _MissingFile(name, v, p, where)
     if not p.is_file():
         raise InputError(f"{where.at(name)} = {toml_value(v)}: {p} is a folder, not a file. Name the file inside it.")
     return p
