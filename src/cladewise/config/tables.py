@@ -395,7 +395,8 @@ def read_table(
     -------
     dict
         The checked (and converted) values of the declared keys that were given,
-        plus defaults when asked; ignored keys are left out.
+        plus defaults when asked; ignored keys and ``None`` values (possible only
+        from Python) are left out.
     """
     where = where or Where(None, f"[{table.name}]")
     if not isinstance(value, dict):
@@ -406,6 +407,8 @@ def read_table(
     out: dict[str, Any] = {}
     missing: list[_MissingFile] = []
     for name, v in value.items():
+        if v is None:  # only from Python (TOML has no null): the same as not given
+            continue
         key = table.keys.get(name)
         if key is None and name in table.ignored:
             continue
