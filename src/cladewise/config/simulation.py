@@ -46,7 +46,16 @@ from typing import Any
 import numpy as np
 
 from cladewise.config.analysis import DATA, OU_ROOTS, SPEC_SECTIONS
-from cladewise.config.tables import Key, Table, Where, check_sections, read_table, read_toml, section
+from cladewise.config.tables import (
+    Key,
+    Table,
+    Where,
+    check_sections,
+    read_table,
+    read_toml,
+    section,
+    toml_value,
+)
 from cladewise.data.trees import FlatTree, read_tree
 from cladewise.errors import InputError
 from cladewise.model.evolution import MODELS, check_model_name
@@ -141,14 +150,15 @@ def _per_trait(sim: dict[str, Any], k: int, where: Where) -> None:
         v = sim.get(key)
         if isinstance(v, list) and v and not isinstance(v[0], list) and len(v) not in (1, k):
             raise InputError(
-                f"{where.at(key)} = {v}: give one number or {k} (one per trait of traits = {sim['traits']})."
+                f"{where.at(key)} = {toml_value(v)}: give one number or {k} (one per trait of "
+                f"traits = {toml_value(sim['traits'])})."
             )
     w = sim.get("within_variance")
     if isinstance(w, list) and w and isinstance(w[0], list):
         if np.shape(w) != (k, k):
             raise InputError(f"{where.at('within_variance')}: a matrix must be {k} x {k} (one row per trait).")
     elif w is not None and np.any(np.asarray(w, dtype=float) < 0):
-        raise InputError(f"{where.at('within_variance')} = {w}: variances must be >= 0.")
+        raise InputError(f"{where.at('within_variance')} = {toml_value(w)}: variances must be >= 0.")
 
 
 def _model_parameters(sim: dict[str, Any], where: Where) -> dict[str, Any]:
@@ -221,7 +231,8 @@ def load_simulation_spec(path: str | Path, seed: int | None = None) -> Simulatio
     n_spec = sim.get("specimens_per_species")
     if isinstance(n_spec, list):
         if n_spec[1] < n_spec[0]:
-            raise InputError(f"{where.at('specimens_per_species')} = {n_spec}: give [low, high] with low <= high.")
+            raise InputError(f"{where.at('specimens_per_species')} = {toml_value(n_spec)}: give [low, high] "
+                             "with low <= high.")
         n_spec = (n_spec[0], n_spec[1])
     if sim["missing_specimen_share"] and n_spec is None:
         raise InputError(f"{where.at('missing_specimen_share')}: needs specimens_per_species (specimen rows).")
