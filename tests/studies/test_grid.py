@@ -115,8 +115,11 @@ def test_grid_on_two_worker_local_cluster(tmp_path):
     (tmp_path / "grid.toml").write_text(
         "[[fit]]\nname = \"single\"\nspec = \"corr.toml\"\n"
         "[[fit]]\nname = \"pooled\"\nspec = \"corr.toml\"\nn_trees = 2\n"
-        "[[fit]]\nname = \"broken\"\nspec = \"corr.toml\"\nsampling = { chains = 0 }\n"
+        "[[fit]]\nname = \"broken\"\nspec = \"broken.toml\"\n"
     )
+    # a valid grid file whose fit fails on the worker: its spec names an absent trait
+    (tmp_path / "broken.toml").write_text(
+        (tmp_path / "corr.toml").read_text().replace('traits = ["a", "b"]', 'traits = ["a", "zz"]'))
     out = tmp_path / "out"
     # a stale half-written folder from an earlier (stopped) run
     (out / ".single.partial-abc123").mkdir(parents=True)
@@ -125,7 +128,7 @@ def test_grid_on_two_worker_local_cluster(tmp_path):
     table = run_grid(tmp_path / "grid.toml", out, n_workers=2, echo=lines.append)
     status = dict(zip(table["name"], table["status"]))
     assert status == {"single": "done", "pooled": "done", "broken": "failed"}, table.to_string()
-    assert "chains" in table.set_index("name").loc["broken", "message"]
+    assert "zz" in table.set_index("name").loc["broken", "message"]
     assert any("2 worker process" in s for s in lines)
     assert _leftovers(out) == []
     assert is_finished(out / "single") and is_finished(out / "pooled")

@@ -1,6 +1,6 @@
 """Simulating continuous traits on a tree.
 
-Model (the same family the likelihood engine fits, see DESIGN.md)::
+Model (the same family the likelihood engine fits, :mod:`cladewise.model.build`)::
 
     X (n_tips x k)   multivariate Brownian motion with rate matrix R on the given
                      (possibly transformed) branch lengths, started at the root
