@@ -89,6 +89,8 @@ SIM_BAD = [
     ("rates-negative", 'traits = ["x", "y"]\nrates = [1, -1]\n', ["rates = [1, -1]", "every number", ">= 0"]),
     ("rates-length", 'traits = ["x", "y"]\nrates = [1, 1, 1]\n', ["rates = [1, 1, 1]", "one number or 2"]),
     ("correlation-range", SIM_OK + "correlation = 1.5\n", ["correlation = 1.5", "between -1"]),
+    ("correlation-ragged", SIM_OK + "correlation = [[1, 0.5], [0.5]]\n", ["rows of a matrix", "same length"]),
+    ("correlation-asymmetric", SIM_OK + "correlation = [[1, 0.5], [0.4, 1]]\n", ["symmetric 2 x 2"]),
     ("missing-share", SIM_OK + "missing_share = 1\n", ["missing_share = 1", "1 (excluded)"]),
     ("replicates-zero", SIM_OK + "replicates = 0\n", ["replicates = 0", ">= 1"]),
     ("replicates-bool", SIM_OK + "replicates = true\n", ["replicates = true", "not a boolean"]),

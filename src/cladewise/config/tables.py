@@ -483,6 +483,8 @@ def check_value(name: str, v: Any, key: Key, where: Where) -> Any:
                     if s not in key.choices:
                         raise InputError(f"{loc}: '{s}' is not a known choice{did_you_mean(s, key.choices)}. "
                                          f"Choose from: {', '.join(key.choices)}.")
+        if kind == "list[list[float]]" and len({len(row) for row in v}) > 1:
+            raise InputError(f"{loc}: the rows of a matrix must all have the same length.{_help(key, name)}")
         if key.unique:
             seen = [x for i, x in enumerate(v) if x in v[:i]]
             if seen:
