@@ -153,6 +153,8 @@ def test_simulation_seed_override_and_defaults(folder):
     (folder / "sim.toml").write_text('[data]\ntree = "t.nwk"\n[simulation]\n' + SIM_OK + "seed = 4\n")
     spec = load_simulation_spec(folder / "sim.toml", seed=9)
     assert spec.seed == 9
+    with pytest.raises(InputError, match="--seed = -2: must be >= 0"):
+        load_simulation_spec(folder / "sim.toml", seed=-2)
     assert spec.settings["model"] == "bm" and spec.settings["model_params"] == {}
     # R from rates and the default correlation 0: diag(rates)
     np.testing.assert_allclose(spec.settings["R"], np.diag([0.5, 1.0]))

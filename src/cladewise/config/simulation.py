@@ -51,6 +51,7 @@ from cladewise.config.tables import (
     Table,
     Where,
     check_sections,
+    check_value,
     read_table,
     read_toml,
     section,
@@ -206,6 +207,8 @@ def load_simulation_spec(path: str | Path, seed: int | None = None) -> Simulatio
         The file, the tree or a setting is wrong; the message says how to fix it.
     """
     shown = Path(path)
+    if seed is not None:
+        seed = check_value("--seed", seed, SIMULATION.keys["seed"], Where(None, ""))
     doc, _ = read_toml(shown)
     check_sections(doc, SPEC_SECTIONS, shown)
     data_raw = section(doc, "data", shown, required='Add [data] with tree = "path/to/tree".')
