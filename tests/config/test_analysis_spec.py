@@ -28,10 +28,10 @@ def test_demo_specimens_spec(tmp_path):
     p = _write(
         tmp_path,
         f'[data]\ntree = "{DEMO / "vadicola_tree.nwk"}"\ntraits = "{DEMO / "vadicola_specimens.csv"}"\n'
-        'specimens = true\nlog = ["head_width_mm"]\n[model]\nkind = "anything"\n',
+        'specimens = true\nlog = ["head_width_mm"]\n[model]\nkind = "independent"\ntraits = ["head_width_mm"]\n',
     )
     spec = load_spec(p)
-    assert spec.model == {"kind": "anything"} and spec.sampling == {}
+    assert spec.model == {"kind": "independent", "traits": ["head_width_mm"]} and spec.sampling == {}
     match, summary = load_data(spec)
     assert match.tree.tip_names == tuple(match.traits.species)
     raw = pd.read_csv(DEMO / "vadicola_specimens.csv", comment="#")
@@ -60,11 +60,11 @@ def test_demo_species_table_with_sample(tmp_path):
 @pytest.mark.parametrize(
     "body, words",
     [
-        ('[data]\ntree = "t.nwk"\ntraits = "x.csv"\nspecimen = true\n', ["unknown key 'specimen'", "Did you mean 'specimens'"]),
+        ('[data]\ntree = "t.nwk"\ntraits = "x.csv"\nspecimen = true\n', ["unknown key 'specimen'", "did you mean 'specimens'"]),
         ('[data]\ntree = "t.nwk"\n', ["needs `traits"]),
         ('[data]\ntree = "missing.nwk"\ntraits = "x.csv"\n', ["missing.nwk", "does not exist"]),
-        ('[data]\ntree = "t.nwk"\ntraits = "x.csv"\nlog = "a"\n', ["log must be a list"]),
-        ('[data]\ntree = "t.nwk"\ntraits = "x.csv"\ndrop_unmatched = 1\n', ["drop_unmatched must be a bool"]),
+        ('[data]\ntree = "t.nwk"\ntraits = "x.csv"\nlog = "a"\n', ["[data] log", "must be a list"]),
+        ('[data]\ntree = "t.nwk"\ntraits = "x.csv"\ndrop_unmatched = 1\n', ["drop_unmatched = 1", "must be true or false"]),
         ('[model]\nx = 1\n', ["no [data] section"]),
         ('[data\ntree = 1\n', ["not valid TOML", "line 1"]),
     ],

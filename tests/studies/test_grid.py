@@ -21,7 +21,8 @@ import pandas as pd
 import pytest
 
 from cladewise.errors import InputError
-from cladewise.studies.grid import STATUS_NAME, is_finished, load_grid, run_grid
+from cladewise.config.grid import load_grid
+from cladewise.studies.grid import STATUS_NAME, is_finished, run_grid
 from cladewise.studies.simulate import simulate_traits
 from cladewise.data.treefiles import format_newick
 
@@ -84,7 +85,7 @@ def test_grid_file_fits_and_cross(tmp_path):
         ("[[fit]]\nspec = \"corr.toml\"\nsteps = 3\n", "unknown key"),
         ("[[fit]]\nname = \"x\"\nspec = \"corr.toml\"\n[[fit]]\nname = \"x\"\nspec = \"indep.toml\"\n", "more than once"),
         ("[[fit]]\nname = \"../up\"\nspec = \"corr.toml\"\n", "folder name"),
-        ("[[fit]]\nspec = \"corr.toml\"\nn_trees = 0\n", "positive whole number"),
+        ("[[fit]]\nspec = \"corr.toml\"\nn_trees = 0\n", "n_trees = 0: must be >= 1"),
         ("[sampling]\nwarmup = 3\n[[fit]]\nspec = \"corr.toml\"\n", "unknown key"),
         ("", "no fits"),
         ("[[fit]\n", "not valid TOML"),
@@ -114,8 +115,11 @@ def test_grid_on_two_worker_local_cluster(tmp_path):
     (tmp_path / "grid.toml").write_text(
         "[[fit]]\nname = \"single\"\nspec = \"corr.toml\"\n"
         "[[fit]]\nname = \"pooled\"\nspec = \"corr.toml\"\nn_trees = 2\n"
-        "[[fit]]\nname = \"broken\"\nspec = \"corr.toml\"\nsampling = { chains = 0 }\n"
+        "[[fit]]\nname = \"broken\"\nspec = \"broken.toml\"\n"
     )
+    # a valid grid file whose fit fails on the worker: its spec names an absent trait
+    (tmp_path / "broken.toml").write_text(
+        (tmp_path / "corr.toml").read_text().replace('traits = ["a", "b"]', 'traits = ["a", "zz"]'))
     out = tmp_path / "out"
     # a stale half-written folder from an earlier (stopped) run
     (out / ".single.partial-abc123").mkdir(parents=True)
@@ -124,7 +128,7 @@ def test_grid_on_two_worker_local_cluster(tmp_path):
     table = run_grid(tmp_path / "grid.toml", out, n_workers=2, echo=lines.append)
     status = dict(zip(table["name"], table["status"]))
     assert status == {"single": "done", "pooled": "done", "broken": "failed"}, table.to_string()
-    assert "chains" in table.set_index("name").loc["broken", "message"]
+    assert "zz" in table.set_index("name").loc["broken", "message"]
     assert any("2 worker process" in s for s in lines)
     assert _leftovers(out) == []
     assert is_finished(out / "single") and is_finished(out / "pooled")

@@ -18,7 +18,7 @@ from cladewise.cli.main import main
 from cladewise.errors import InputError
 from cladewise.report.study_figures import save_power_figure
 from cladewise.studies.power import PowerResult, _power_table, measurement_se, run_power_study
-from cladewise.cli.power import load_power_spec
+from cladewise.config.power import load_power_spec
 from cladewise.inference.sampling import SamplingOptions
 from cladewise.data.trees import FlatTree
 from cladewise.data.treefiles import parse_newick
@@ -158,7 +158,7 @@ def test_power_spec_reads_a_valid_spec(tmp_path):
         ("rates = [1, 1]\nwithin_variance = 0.1\n", "go together"),
         ("rates = [1, 1]\nwithin_variance = 0.1\nspecimens_per_species = { a = 2 }\n", "every tip"),
         ("rates = [1, 1]\nalpha = 0.9\n", "alpha"),
-        ('rates = [1, 1]\ntraits = ["x", "x"]\n', "two different names"),
+        ('rates = [1, 1]\ntraits = ["x", "x"]\n', 'traits = \\["x", "x"\\]: lists "x" twice'),
     ],
 )
 def test_power_spec_rejects_mistakes_with_a_message(tmp_path, power, message):
@@ -168,7 +168,7 @@ def test_power_spec_rejects_mistakes_with_a_message(tmp_path, power, message):
 
 def test_power_spec_needs_tree_and_power_table(tmp_path):
     path = _write_spec(tmp_path, "rates = [1, 1]\n", tree=False)
-    with pytest.raises(InputError, match="not found"):
+    with pytest.raises(InputError, match="does not exist"):
         load_power_spec(path)
     (tmp_path / "tree.nwk").write_text(TREE_TEXT)
     (tmp_path / "other.toml").write_text('[data]\ntree = "tree.nwk"\n')

@@ -262,7 +262,7 @@ def test_command_line_spec(tmp_path):
 
 def test_documented_spec_example_runs(tmp_path):
     # The TOML example in the module docstring must stay valid.
-    import cladewise.studies.simulate as mod
+    import cladewise.config.simulation as mod
 
     block = mod.__doc__.split("SPEC is a TOML file::\n\n")[1].split("\nOutput folder")[0]
     (tmp_path / "spec.toml").write_text("\n".join(line[4:] for line in block.splitlines()))

@@ -1,7 +1,10 @@
 """Analysis specifications: plain TOML files that say what to analyse and how.
 
-Only the ``[data]`` section is validated here; ``[model]`` and ``[sampling]`` are
-kept as raw dictionaries for the model builders, which validate them.
+Every section is declared here once, as a table of known keys (:data:`DATA`,
+:data:`MODEL`, :data:`SAMPLING`), and read by the one table reader of
+:mod:`cladewise.config.tables`: types, ranges, choices and file paths are checked
+when the spec is read, before any data or model work. To add a ``[model]`` key,
+add it to :data:`MODEL` (and the field to :class:`cladewise.model.build.ModelSpec`).
 
 ``[data]`` keys (paths are relative to the spec file)::
 
@@ -19,23 +22,145 @@ kept as raw dictionaries for the model builders, which validate them.
 
 At least one of ``tree`` and ``trees`` is required; with only ``trees`` the first
 tree of the sample is the reference tree.
+
+``[model]`` and ``[sampling]``: see :data:`MODEL`, :data:`MODEL_PRIORS`,
+:data:`MODEL_FIXED` and :data:`SAMPLING` (the printed key lists of
+``python -c "from cladewise.config.analysis import MODEL; print(*MODEL.keys)"``).
 """
 
 from __future__ import annotations
 
-import difflib
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from cladewise.config.tables import Key, Table, Where, check_sections, read_table, read_toml, section
 from cladewise.data.summary import DataSummary, summarize
 from cladewise.errors import InputError
 from cladewise.data.matching import MatchResult, match_names
+from cladewise.data.tables import parse_separator
 from cladewise.data.traits import read_traits
 from cladewise.data.treefiles import read_trees
+from cladewise.model.evolution import MODELS, check_model_name
 
-__all__ = ["DataSpec", "Spec", "load_spec", "load_data", "prepare_data"]
+__all__ = [
+    "DataSpec",
+    "Spec",
+    "load_spec",
+    "load_data",
+    "prepare_data",
+    "DATA",
+    "MODEL",
+    "MODEL_PRIORS",
+    "MODEL_FIXED",
+    "SAMPLING",
+    "SPEC_SECTIONS",
+    "KINDS",
+    "MEASUREMENT_ERROR",
+    "OU_ROOTS",
+]
+
+#: model kinds of ``[model] kind``
+KINDS = ("correlated", "independent", "regression")
+#: measurement-error models of ``[model] measurement_error``
+MEASUREMENT_ERROR = ("none", "se", "specimens")
+#: root treatments of the Ornstein-Uhlenbeck model
+OU_ROOTS = ("fixed", "stationary")
+
+#: top-level sections of a spec file and who reads them
+SPEC_SECTIONS: dict[str, str] = {
+    "data": "(files)",
+    "model": "(what to fit)",
+    "sampling": "(how to sample)",
+    "simulation": "(read by cladewise simulate)",
+    "power": "(read by cladewise power)",
+}
+
+DATA = Table("data", {
+    "tree": Key("str", "tree file, Newick or NEXUS; the first tree is used", path=True, example='"tree.nwk"'),
+    "trees": Key("str", "tree sample file, same species as the tree", path=True, example='"sample.nex"'),
+    "traits": Key("str", "trait table, CSV or TSV", path=True, example='"species.csv"'),
+    "species": Key("str", "name of the species column", example='"species"'),
+    "specimens": Key("bool", "true: one row per specimen", example="false"),
+    "log": Key("list[str]", "trait columns to natural-log transform", empty=True, unique=True,
+               example='["body_mass"]'),
+    "se_suffix": Key("str", "ending of standard-error columns, <trait>_se", example='"_se"'),
+    "n_suffix": Key("str", "ending of sample-size columns, <trait>_n", example='"_n"'),
+    "sd_suffix": Key("str", "ending of standard-deviation columns, <trait>_sd", example='"_sd"'),
+    "drop_unmatched": Key("bool", "true: leave out table species absent from the tree", example="false"),
+    "ultrametric_rtol": Key("float", "relative tolerance of the ultrametric check", min=0.0, max=1.0,
+                            max_open=True, example="1e-6"),
+    "separator": Key("str", "column separator of the trait table: auto (detected), comma, semicolon, tab, "
+                     "or the character itself", choices=("auto", ",", ";", "\t", "comma", "semicolon", "tab"),
+                     example='"auto"'),
+    "decimal": Key("str", "decimal mark of the trait table's numbers", choices=(".", ","), example='"."'),
+}, help="the files to analyse")
+
+
+#: ``[model.priors]``: overrides of the default priors (descriptions are shown
+#: by the model builder as ``cladewise.model.build.PRIOR_KEYS``)
+MODEL_PRIORS = Table("model.priors", {
+    "rate_scale": Key("float", "multiplier on the data-scaled half-normal scale of each sqrt-rate (default 1)",
+                      min=0, min_open=True, example="1.0"),
+    "root_sd": Key("float", "sd of the normal prior on root means, in trait sd units (default 5)",
+                   min=0, min_open=True, example="5.0"),
+    "lkj_eta": Key("float", "LKJ shape of the evolutionary correlation matrix (default 1: uniform)",
+                   min=0, min_open=True, example="1.0"),
+    "coef_scale": Key(("float", "str"), "sd of normal priors on regression slopes in units sd(y)/sd(x) "
+                      "(default 2.5), or 'flat'", min=0, min_open=True, choices=("flat",), example="2.5"),
+    "lambda_beta": Key("list[float]", "[a, b] of a Beta prior on Pagel's lambda (default [1, 1]: uniform)",
+                       min=0, min_open=True, sizes=(2,), example="[1.0, 1.0]"),
+    "alpha_scale": Key("float", "half-normal sd of OU alpha, in units of 1/tree height (default 3)",
+                       min=0, min_open=True, example="3.0"),
+    "kappa_sd": Key("float", "sd of a log-normal prior on kappa centred on 1 (default 0.5)",
+                    min=0, min_open=True, example="0.5"),
+    "delta_sd": Key("float", "sd of a log-normal prior on delta centred on 1 (default 0.5)",
+                    min=0, min_open=True, example="0.5"),
+    "rate_change_scale": Key("float", "sd of the normal prior on the early-burst rate change, per tree "
+                             "height (default 3)", min=0, min_open=True, example="3.0"),
+    "species_scale": Key("float", "multiplier on the half-normal scale of species-level sds (default 1)",
+                         min=0, min_open=True, example="1.0"),
+}, help="prior settings")
+
+#: ``[model.fixed]``: an evolution-model parameter held at a value instead of estimated
+MODEL_FIXED = Table("model.fixed", {
+    "lambda": Key("float", "Pagel's lambda", min=0, max=1, example="0.5"),
+    "lam": Key("float", "Pagel's lambda (internal name; prefer `lambda`)", min=0, max=1, example="0.5"),
+    "alpha": Key("float", "Ornstein-Uhlenbeck pull, per unit time", min=0, min_open=True, example="1.0"),
+    "kappa": Key("float", "Pagel's kappa", min=0, min_open=True, example="1.0"),
+    "delta": Key("float", "Pagel's delta", min=0, min_open=True, example="1.0"),
+    "rate_change": Key("float", "early-burst rate change per unit time", example="-1.0"),
+}, help="fixed evolution-model parameters")
+
+#: ``[model]``: the one declaration of every model key (fields of ModelSpec)
+MODEL = Table("model", {
+    "kind": Key("str", "the model", choices=KINDS, example='"correlated"'),
+    "traits": Key("list[str]", "trait columns of the model", unique=True, example='["trait_a", "trait_b"]'),
+    "formula": Key("str", "regression formula, response ~ predictors", example='"y ~ x1 + x2"'),
+    "evolution": Key("str", "evolution model: " + ", ".join(MODELS), convert=check_model_name,
+                     example='"bm"'),
+    "ou_root": Key("str", "root treatment of the Ornstein-Uhlenbeck model", choices=OU_ROOTS,
+                   example='"fixed"'),
+    "measurement_error": Key("str", "measurement-error model", choices=MEASUREMENT_ERROR, example='"none"'),
+    "species_covariance": Key("bool", "true: add a species-level (non-phylogenetic) covariance",
+                              example="false"),
+    "priors": Key("table", "overrides of the default priors", table=MODEL_PRIORS,
+                  example="{ lkj_eta = 2.0 }"),
+    "fixed": Key("table", "an evolution-model parameter held fixed", table=MODEL_FIXED,
+                 example="{ lambda = 0.5 }"),
+}, help="what to fit")
+
+#: ``[sampling]``: fields of SamplingOptions
+SAMPLING = Table("sampling", {
+    "sampler": Key("str", "the sampler", choices=("nutpie", "pymc"), example='"nutpie"'),
+    "chains": Key("int", "number of chains", min=1, example="4"),
+    "draws": Key("int", "draws kept per chain", min=1, example="1000"),
+    "tune": Key("int", "tuning steps per chain", min=0, example="1000"),
+    "seed": Key("int", "random seed, a whole number >= 0", min=0, example="1"),
+    "target_accept": Key("float", "target acceptance rate of NUTS", min=0.5, max=1.0, max_open=True,
+                         example="0.9"),
+    "progress": Key("bool", "show a progress bar (default: only on a terminal)", example="true"),
+}, help="how to sample")
 
 
 @dataclass(frozen=True)
@@ -53,11 +178,17 @@ class DataSpec:
     sd_suffix: str = "_sd"
     drop_unmatched: bool = False
     ultrametric_rtol: float = 1e-6
+    separator: str = "auto"
+    decimal: str = "."
 
 
 @dataclass(frozen=True)
 class Spec:
-    """An analysis specification read from TOML."""
+    """An analysis specification read from TOML.
+
+    ``model`` and ``sampling`` hold the keys given in the file, already checked
+    against :data:`MODEL` and :data:`SAMPLING`.
+    """
 
     path: Path
     data: DataSpec
@@ -66,100 +197,37 @@ class Spec:
     raw: dict[str, Any] = field(default_factory=dict)
 
 
-_TYPES: dict[str, tuple[type, ...]] = {
-    "tree": (str,),
-    "trees": (str,),
-    "traits": (str,),
-    "species": (str,),
-    "specimens": (bool,),
-    "log": (list,),
-    "se_suffix": (str,),
-    "n_suffix": (str,),
-    "sd_suffix": (str,),
-    "drop_unmatched": (bool,),
-    "ultrametric_rtol": (float, int),
-}
-
-
-def _suggest(key: str, options) -> str:
-    close = difflib.get_close_matches(key, list(options), n=1, cutoff=0.5)
-    return f" Did you mean '{close[0]}'?" if close else ""
-
-
 def load_spec(path: str | Path) -> Spec:
     """Read and validate a spec file.
 
     Raises
     ------
     InputError
-        The file is missing or not valid TOML, ``[data]`` is missing, has unknown
-        keys or values of the wrong type, or names files that do not exist.
+        The file is missing or not valid TOML; a section is unknown or not a table;
+        ``[data]`` is missing; a key is unknown, of the wrong type or out of range;
+        or a named file does not exist. The message names the file, section, key
+        and value and says how to fix it.
     """
-    path = Path(path).resolve()
-    try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise InputError(f"spec file not found: {path}. Check the path.") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{path}: not valid TOML: {exc}. Fix the syntax at that place.") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"cannot read spec file {path}: {exc}") from None
-    data = raw.get("data")
-    if not isinstance(data, dict):
-        raise InputError(
-            f"{path}: no [data] section. Add one with at least `tree = ...` and `traits = ...`."
-        )
-    for key, value in data.items():
-        if key not in _TYPES:
-            raise InputError(
-                f"{path}: unknown key '{key}' in [data].{_suggest(key, _TYPES)} "
-                f"Known keys: {', '.join(_TYPES)}."
-            )
-        if not isinstance(value, _TYPES[key]) or (isinstance(value, bool) and bool not in _TYPES[key]):
-            want = " or ".join(t.__name__ for t in _TYPES[key])
-            raise InputError(f"{path}: [data] {key} must be a {want}, not {value!r}.")
-    log = data.get("log", [])
-    if not all(isinstance(x, str) for x in log):
-        raise InputError(f"{path}: [data] log must be a list of trait names (strings).")
-    if "traits" not in data:
-        raise InputError(f"{path}: [data] needs `traits = \"<table file>\"`.")
-    if "tree" not in data and "trees" not in data:
-        raise InputError(f"{path}: [data] needs `tree = \"<tree file>\"` (or `trees = ...`).")
-    base = path.parent
-
-    def resolve(key: str) -> Path | None:
-        if key not in data:
-            return None
-        p = (base / data[key]).resolve()
-        if not p.is_file():
-            raise InputError(
-                f"{path}: [data] {key} = \"{data[key]}\" does not exist (looked for {p}). "
-                "Paths are relative to the spec file."
-            )
-        return p
-
-    rtol = float(data.get("ultrametric_rtol", 1e-6))
-    if not 0 <= rtol < 1:
-        raise InputError(f"{path}: [data] ultrametric_rtol must be between 0 and 1.")
-    ds = DataSpec(
-        traits=resolve("traits"),  # type: ignore[arg-type]
-        tree=resolve("tree"),
-        trees=resolve("trees"),
-        species=data.get("species", "species"),
-        specimens=data.get("specimens", False),
-        log=tuple(log),
-        se_suffix=data.get("se_suffix", "_se"),
-        n_suffix=data.get("n_suffix", "_n"),
-        sd_suffix=data.get("sd_suffix", "_sd"),
-        drop_unmatched=data.get("drop_unmatched", False),
-        ultrametric_rtol=rtol,
-    )
-    model = raw.get("model", {})
-    sampling = raw.get("sampling", {})
-    for name, sec in (("model", model), ("sampling", sampling)):
-        if not isinstance(sec, dict):
-            raise InputError(f"{path}: [{name}] must be a table (a section), not a value.")
-    return Spec(path=path, data=ds, model=model, sampling=sampling, raw=raw)
+    shown = Path(path)
+    raw, _ = read_toml(shown)
+    check_sections(raw, SPEC_SECTIONS, shown)
+    data = section(raw, "data", shown, required="Add one with at least `tree = ...` and `traits = ...`.")
+    d = read_table(data, DATA, Where(shown, "[data]"))
+    if "traits" not in d:
+        raise InputError(f"{shown}: [data] needs `traits = \"<table file>\"` (the trait table, CSV or TSV).")
+    if "tree" not in d and "trees" not in d:
+        raise InputError(f"{shown}: [data] needs `tree = \"<tree file>\"` (or `trees = ...`).")
+    suffixes = {k: d.get(k, DataSpec.__dataclass_fields__[k].default) for k in ("se_suffix", "n_suffix", "sd_suffix")}
+    if len(set(suffixes.values())) < 3:
+        same = ", ".join(f'{k} = "{v}"' for k, v in suffixes.items())
+        raise InputError(f"{shown}: [data] {same}: the three column endings must differ; give each its own.")
+    if "log" in d:
+        d["log"] = tuple(d["log"])
+    if "ultrametric_rtol" in d:
+        d["ultrametric_rtol"] = float(d["ultrametric_rtol"])
+    model = read_table(section(raw, "model", shown) or {}, MODEL, Where(shown, "[model]"))
+    sampling = read_table(section(raw, "sampling", shown) or {}, SAMPLING, Where(shown, "[sampling]"))
+    return Spec(path=shown.resolve(), data=DataSpec(**d), model=model, sampling=sampling, raw=raw)
 
 
 def prepare_data(
@@ -175,6 +243,8 @@ def prepare_data(
     sd_suffix: str = "_sd",
     drop_unmatched: bool = False,
     ultrametric_rtol: float = 1e-6,
+    separator: str | None = "auto",
+    decimal: str = ".",
 ) -> tuple[MatchResult, DataSummary]:
     """Files to a validated, matched tree and trait table, and its summary.
 
@@ -215,6 +285,8 @@ def prepare_data(
         se_suffix=se_suffix,
         n_suffix=n_suffix,
         sd_suffix=sd_suffix,
+        separator=parse_separator(separator),
+        decimal=decimal,
     )
     match = match_names(ref, td, drop_unmatched=drop_unmatched, trees=sample)
     summary = summarize(
@@ -242,4 +314,6 @@ def load_data(spec: Spec) -> tuple[MatchResult, DataSummary]:
         sd_suffix=d.sd_suffix,
         drop_unmatched=d.drop_unmatched,
         ultrametric_rtol=d.ultrametric_rtol,
+        separator=d.separator,
+        decimal=d.decimal,
     )

@@ -17,6 +17,8 @@ from typing import Any
 import arviz as az
 import numpy as np
 
+from cladewise.config.analysis import SAMPLING
+from cladewise.config.tables import read_table
 from cladewise.model.build import BuiltModel
 from cladewise.errors import FitError, InputError
 
@@ -41,11 +43,8 @@ class SamplingOptions:
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "SamplingOptions":
-        known = set(cls.__dataclass_fields__)
-        unknown = sorted(set(d) - known)
-        if unknown:
-            raise InputError(f"unknown key(s) in [sampling]: {unknown}; known keys: {', '.join(sorted(known))}")
-        opts = cls(**d)
+        # keys, types and ranges are declared once, in config.analysis.SAMPLING
+        opts = cls(**read_table(d, SAMPLING))
         opts.validate()
         return opts
 

@@ -48,6 +48,8 @@ import pymc as pm
 import pytensor
 import pytensor.tensor as pt
 
+from cladewise.config.analysis import KINDS, MEASUREMENT_ERROR, MODEL, MODEL_PRIORS
+from cladewise.config.tables import read_table
 from cladewise.errors import InputError
 from cladewise.model.evolution import (
     MODELS,
@@ -71,22 +73,9 @@ __all__ = [
     "PRIOR_KEYS",
 ]
 
-KINDS = ("correlated", "independent", "regression")
-MEASUREMENT_ERROR = ("none", "se", "specimens")
-
-#: prior overrides accepted in ``[model.priors]`` / ``ModelSpec.priors``
-PRIOR_KEYS: dict[str, str] = {
-    "rate_scale": "multiplier on the data-scaled half-normal scale of each sqrt-rate (default 1)",
-    "root_sd": "sd of the normal prior on root means, in trait sd units (default 5)",
-    "lkj_eta": "LKJ shape of the evolutionary correlation matrix (default 1: uniform)",
-    "coef_scale": "sd of normal priors on regression slopes in units sd(y)/sd(x) (default 2.5), or 'flat'",
-    "lambda_beta": "[a, b] of a Beta prior on Pagel's lambda (default [1, 1]: uniform)",
-    "alpha_scale": "half-normal sd of OU alpha, in units of 1/tree height (default 3)",
-    "kappa_sd": "sd of a log-normal prior on kappa centred on 1 (default 0.5)",
-    "delta_sd": "sd of a log-normal prior on delta centred on 1 (default 0.5)",
-    "rate_change_scale": "sd of the normal prior on the early-burst rate change, per tree height (default 3)",
-    "species_scale": "multiplier on the half-normal scale of species-level sds (default 1)",
-}
+#: prior overrides accepted in ``[model.priors]`` / ``ModelSpec.priors`` (declared,
+#: with their ranges, in ``cladewise.config.analysis.MODEL_PRIORS``)
+PRIOR_KEYS: dict[str, str] = {name: key.help for name, key in MODEL_PRIORS.keys.items()}
 
 
 # --------------------------------------------------------------------------- data
@@ -165,19 +154,8 @@ class ModelSpec:
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "ModelSpec":
         """Validate a ``[model]`` table (unknown keys and values are errors)."""
-        known = {f for f in cls.__dataclass_fields__}
-        unknown = sorted(set(d) - known)
-        if unknown:
-            import difflib
-
-            hints = [
-                f"{u!r}" + (f" (did you mean {m[0]!r}?)" if (m := difflib.get_close_matches(u, known, 1)) else "")
-                for u in unknown
-            ]
-            raise InputError(
-                f"unknown key(s) in [model]: {', '.join(hints)}; known keys: {', '.join(sorted(known))}"
-            )
-        spec = cls(**d)
+        # keys, types, ranges and choices are declared once, in config.analysis.MODEL
+        spec = cls(**read_table(d, MODEL))
         spec.validate()
         return spec
 

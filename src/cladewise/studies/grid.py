@@ -1,29 +1,6 @@
 """Many fits at once: a grid of (spec, tree sample) jobs run through dask.distributed.
 
-Grid file (TOML; every path is relative to the grid file)::
-
-    # optional: [sampling] overrides applied to every fit (chains, draws, tune,
-    # seed, sampler, target_accept)
-    [sampling]
-    draws = 500
-    tune = 500
-
-    # one fit per [[fit]] table
-    [[fit]]
-    name = "bm_20_trees"          # output folder under --out; default: spec file stem,
-                                  # plus "__<trees file stem>" and "__<n>trees" when given
-    spec = "models/demo_correlated.toml"
-    trees = "data/sample.nex"     # optional: fit over this tree sample (pooled)
-    n_trees = 20                  # optional: a seeded random subset of the sample
-                                  # (the spec's own [data] trees when `trees` is absent)
-    sampling = { seed = 3 }       # optional: overrides for this fit only
-
-    # every spec x every tree file (names built as above)
-    [[cross]]
-    specs = ["models/a.toml", "models/b.toml"]
-    trees = ["data/s1.nex", "data/s2.nex"]   # optional; absent: each spec's own tree
-    n_trees = 10                             # optional
-    sampling = { draws = 300 }               # optional
+The grid file format and its reader are in :mod:`cladewise.config.grid`.
 
 A fit without ``trees`` and ``n_trees`` is a single-tree fit (what ``cladewise fit``
 does); with either it pools over the tree sample
@@ -45,153 +22,23 @@ from __future__ import annotations
 
 import json
 import os
-import re
 import shutil
 import socket
 import time
-import tomllib
 import uuid
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict
 from pathlib import Path
 from typing import Any, Callable
 
 import pandas as pd
 
+from cladewise.config.grid import GridJob, load_grid
 from cladewise.errors import InputError
 
-__all__ = ["GridJob", "load_grid", "is_finished", "run_job", "run_grid", "format_status", "LOCK_NAME", "STATUS_NAME"]
+__all__ = ["is_finished", "run_job", "run_grid", "format_status", "LOCK_NAME", "STATUS_NAME"]
 
 LOCK_NAME = ".grid.lock"
 STATUS_NAME = "grid_status.csv"
-_NAME_OK = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
-_FIT_KEYS = {"name", "spec", "trees", "n_trees", "sampling"}
-_CROSS_KEYS = {"specs", "trees", "n_trees", "sampling"}
-_SAMPLING_KEYS = {"sampler", "chains", "draws", "tune", "seed", "target_accept"}
-
-
-@dataclass(frozen=True)
-class GridJob:
-    """One fit of a grid (paths absolute)."""
-
-    name: str
-    spec: str
-    trees: str | None = None
-    n_trees: int | None = None
-    sampling: dict[str, Any] = field(default_factory=dict)
-
-    @property
-    def pooled(self) -> bool:
-        """True when the fit pools over a tree sample."""
-        return self.trees is not None or self.n_trees is not None
-
-
-# =========================================================================== grid file
-def _path(base: Path, value: Any, where: str, grid: Path) -> str:
-    if not isinstance(value, str) or not value:
-        raise InputError(f"{grid}: {where} must be a file path (a string), not {value!r}")
-    p = (base / value).resolve()
-    if not p.is_file():
-        raise InputError(f"{grid}: {where} = \"{value}\" does not exist (looked for {p}); paths are relative to the grid file")
-    return str(p)
-
-
-def _sampling(d: Any, where: str, grid: Path) -> dict[str, Any]:
-    if d is None:
-        return {}
-    if not isinstance(d, dict):
-        raise InputError(f"{grid}: {where} must be a table, e.g. sampling = {{ draws = 500 }}")
-    bad = sorted(set(d) - _SAMPLING_KEYS)
-    if bad:
-        raise InputError(f"{grid}: unknown key(s) {bad} in {where}; known: {', '.join(sorted(_SAMPLING_KEYS))}")
-    return dict(d)
-
-
-def _n_trees(v: Any, where: str, grid: Path) -> int | None:
-    if v is None:
-        return None
-    if isinstance(v, bool) or not isinstance(v, int) or v < 1:
-        raise InputError(f"{grid}: {where} n_trees must be a positive whole number, not {v!r}")
-    return v
-
-
-def _default_name(spec: str, trees: str | None, n_trees: int | None) -> str:
-    name = Path(spec).stem
-    if trees:
-        name += "__" + Path(trees).stem
-    if n_trees:
-        name += f"__{n_trees}trees"
-    return name
-
-
-def load_grid(path: str | Path) -> list[GridJob]:
-    """Read and validate a grid file (format in the module docstring).
-
-    Raises
-    ------
-    InputError
-        Bad TOML, unknown keys, missing files, duplicate or unusable fit names, or
-        no fits at all.
-    """
-    grid = Path(path).resolve()
-    try:
-        raw = tomllib.loads(grid.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise InputError(f"grid file not found: {grid}. Check the path.") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{grid}: not valid TOML: {exc}. Fix the syntax at that place.") from None
-    unknown = sorted(set(raw) - {"fit", "cross", "sampling"})
-    if unknown:
-        raise InputError(f"{grid}: unknown top-level key(s) {unknown}; use [[fit]], [[cross]] and [sampling]")
-    base = grid.parent
-    common = _sampling(raw.get("sampling"), "[sampling]", grid)
-    jobs: list[GridJob] = []
-    fits = raw.get("fit", [])
-    crosses = raw.get("cross", [])
-    if not isinstance(fits, list) or not isinstance(crosses, list):
-        raise InputError(f"{grid}: write fits as [[fit]] and [[cross]] tables (double brackets)")
-    for i, f in enumerate(fits, 1):
-        where = f"[[fit]] number {i}"
-        bad = sorted(set(f) - _FIT_KEYS)
-        if bad:
-            raise InputError(f"{grid}: unknown key(s) {bad} in {where}; known: {', '.join(sorted(_FIT_KEYS))}")
-        if "spec" not in f:
-            raise InputError(f"{grid}: {where} needs spec = \"<spec file>\"")
-        spec = _path(base, f["spec"], f"{where} spec", grid)
-        trees = _path(base, f["trees"], f"{where} trees", grid) if "trees" in f else None
-        n = _n_trees(f.get("n_trees"), where, grid)
-        name = f.get("name") or _default_name(spec, trees, n)
-        jobs.append(GridJob(str(name), spec, trees, n, {**common, **_sampling(f.get("sampling"), f"{where} sampling", grid)}))
-    for i, c in enumerate(crosses, 1):
-        where = f"[[cross]] number {i}"
-        bad = sorted(set(c) - _CROSS_KEYS)
-        if bad:
-            raise InputError(f"{grid}: unknown key(s) {bad} in {where}; known: {', '.join(sorted(_CROSS_KEYS))}")
-        specs = c.get("specs")
-        if not isinstance(specs, list) or not specs:
-            raise InputError(f"{grid}: {where} needs specs = [\"a.toml\", ...] (a non-empty list)")
-        tree_list = c.get("trees", [None])
-        if not isinstance(tree_list, list) or not tree_list:
-            raise InputError(f"{grid}: {where} trees must be a non-empty list of tree files")
-        n = _n_trees(c.get("n_trees"), where, grid)
-        samp = {**common, **_sampling(c.get("sampling"), f"{where} sampling", grid)}
-        for s in specs:
-            sp = _path(base, s, f"{where} specs", grid)
-            for t in tree_list:
-                tp = _path(base, t, f"{where} trees", grid) if t is not None else None
-                jobs.append(GridJob(_default_name(sp, tp, n), sp, tp, n, samp))
-    if not jobs:
-        raise InputError(f"{grid}: no fits; add [[fit]] or [[cross]] tables (see 'cladewise grid --help')")
-    seen: dict[str, int] = {}
-    for j in jobs:
-        if not _NAME_OK.match(j.name):
-            raise InputError(
-                f"{grid}: fit name {j.name!r} cannot be a folder name; use letters, digits, '-', '_' and '.'"
-            )
-        seen[j.name] = seen.get(j.name, 0) + 1
-    dup = sorted(n for n, k in seen.items() if k > 1)
-    if dup:
-        raise InputError(f"{grid}: fit name(s) {dup} occur more than once; give each [[fit]] its own name")
-    return jobs
 
 
 # =========================================================================== one fit

@@ -1,6 +1,6 @@
 """Simulating continuous traits on a tree.
 
-Model (the same family the likelihood engine fits, see DESIGN.md)::
+Model (the same family the likelihood engine fits, :mod:`cladewise.model.build`)::
 
     X (n_tips x k)   multivariate Brownian motion with rate matrix R on the given
                      (possibly transformed) branch lengths, started at the root
@@ -13,40 +13,8 @@ Draws are exact: one pre-order pass from the root to the tips,
 ``x_child = x_parent + sqrt(t_child) * L z`` with ``L L' = R``, vectorised over
 replicates and over all nodes at the same depth.
 
-Command line: ``cladewise simulate SPEC --out DIR``. SPEC is a TOML file::
-
-    # Invented example.
-    [data]
-    tree = "tree.nwk"              # relative to this file; the first tree is used
-
-    [simulation]
-    traits = ["mass", "speed"]     # trait (column) names, k of them
-    rates = [0.04, 0.09]           # Brownian rate per trait: variance per unit
-                                   # branch length (diagonal of R)
-    correlation = 0.6              # evolutionary correlation: one number (k = 2)
-                                   # or a k x k matrix as nested lists; default 0
-    root_means = [2.0, 1.0]        # root value per trait; default 0
-    species_variance = [0.01, 0.01]     # optional: diagonal of E (species-level,
-    species_correlation = 0.0           # non-phylogenetic), correlation as above
-    within_variance = [0.02, 0.05]      # variance among specimens of a species
-    specimens_per_species = [3, 12]     # an integer, or [low, high]: drawn
-                                        # uniformly per species, both included
-    # standard_errors = [0.05, 0.1]     # instead of specimens: known se per trait
-    missing_share = 0.1                 # share of species x trait cells left blank
-    missing_specimen_share = 0.0        # share of single specimen cells left blank
-    seed = 1
-    replicates = 1                      # > 1 writes DIR/replicate_0001, ...
-    model = "bm"                        # bm, lambda, ou, kappa, delta, early_burst
-    model_parameters = {}               # passed to the branch-length transform:
-                                        # { lam = 0.5 } (lambda), { alpha = 1.0 }
-                                        # (ou, optional ou_root = "stationary"),
-                                        # { kappa = .. }, { delta = .. },
-                                        # { rate_change = .. } (early_burst)
-
-Output folder: ``species.csv`` (``species``, trait columns, ``<trait>_se``,
-``<trait>_n``), ``specimens.csv`` (``species`` and trait columns, one row per
-individual) when specimens were drawn, ``true_means.csv`` (the true species means Y),
-``truth.json`` (every setting and parameter) and ``tree.nwk``.
+Command line: ``cladewise simulate SPEC --out DIR``; the SPEC format (the
+``[simulation]`` table) and its reader are in :mod:`cladewise.config.simulation`.
 """
 
 from __future__ import annotations
@@ -54,7 +22,6 @@ from __future__ import annotations
 import argparse
 import json
 import math
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
@@ -62,10 +29,11 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
+from cladewise.config.simulation import load_simulation_spec
 from cladewise.errors import InputError
 from cladewise.model.evolution import check_model_name, model_warnings, transformed_lengths
 from cladewise.data.trees import FlatTree
-from cladewise.data.treefiles import format_newick, read_tree
+from cladewise.data.treefiles import format_newick
 
 __all__ = [
     "SimulatedData",
@@ -504,93 +472,6 @@ def write_dataset(sim: SimulatedData, out_dir: str | Path, *, overwrite: bool = 
 
 
 # -------------------------------------------------------------- command line
-def _spec_matrix(spec: dict[str, Any], var_key: str, cor_key: str, k: int, required: bool) -> np.ndarray | None:
-    if var_key not in spec:
-        if required:
-            raise InputError(f"[simulation] needs '{var_key}' (one variance per trait).")
-        return None
-    var = np.broadcast_to(np.asarray(spec[var_key], dtype=float), (k,))
-    if np.any(var < 0):
-        raise InputError(f"[simulation] {var_key} must be >= 0.")
-    cor = np.asarray(spec.get(cor_key, 0.0), dtype=float)
-    if cor.ndim == 0:
-        if k > 2 and float(cor) != 0.0:
-            raise InputError(
-                f"[simulation] {cor_key}: give a {k} x {k} matrix for more than two traits."
-            )
-        cor = np.eye(k) + float(cor) * (1 - np.eye(k))
-    if cor.shape != (k, k) or np.any(np.abs(cor) > 1) or np.any(np.diag(cor) != 1):
-        raise InputError(
-            f"[simulation] {cor_key} must be one number in [-1, 1] or a {k} x {k} "
-            "correlation matrix with ones on the diagonal."
-        )
-    sd = np.sqrt(var)
-    return cor * np.outer(sd, sd)
-
-
-def _dataset_from_spec(spec_path: Path, seed_override: int | None) -> tuple[dict[str, Any], FlatTree]:
-    try:
-        doc = tomllib.loads(spec_path.read_text())
-    except FileNotFoundError:
-        raise InputError(f"spec file {spec_path} not found.") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{spec_path} is not valid TOML: {exc}") from None
-    tree_rel = doc.get("data", {}).get("tree")
-    if not tree_rel:
-        raise InputError(f'{spec_path} needs [data] tree = "path/to/tree".')
-    tree_path = (spec_path.parent / tree_rel).resolve()
-    if not tree_path.is_file():
-        raise InputError(f"tree file {tree_path} (from [data] tree) not found.")
-    sim = doc.get("simulation")
-    if not isinstance(sim, dict):
-        raise InputError(f"{spec_path} needs a [simulation] table (see `cladewise simulate --help`).")
-    known = {"traits", "rates", "correlation", "root_means", "species_variance",
-             "species_correlation", "within_variance", "specimens_per_species",
-             "standard_errors", "missing_share", "missing_specimen_share", "seed",
-             "replicates", "model", "model_parameters"}
-    unknown = set(sim) - known
-    if unknown:
-        raise InputError(
-            f"unknown [simulation] keys {sorted(unknown)}; allowed: {sorted(known)}."
-        )
-    traits = sim.get("traits")
-    if not isinstance(traits, list) or not traits:
-        raise InputError('[simulation] needs traits = ["name", ...].')
-    k = len(traits)
-    n_spec = sim.get("specimens_per_species")
-    if n_spec is not None and "standard_errors" in sim:
-        raise InputError(
-            "give either specimens_per_species (se computed from specimens) or "
-            "standard_errors (known se), not both."
-        )
-    if n_spec is None and "within_variance" in sim:
-        raise InputError("within_variance needs specimens_per_species.")
-    if isinstance(n_spec, list):
-        if len(n_spec) != 2:
-            raise InputError("specimens_per_species must be an integer or [low, high].")
-        n_spec = (int(n_spec[0]), int(n_spec[1]))
-    kwargs = dict(
-        traits=traits,
-        R=_spec_matrix(sim, "rates", "correlation", k, True),
-        mu=sim.get("root_means", 0.0),
-        E=_spec_matrix(sim, "species_variance", "species_correlation", k, False),
-        within_var=sim.get("within_variance"),
-        n_specimens=n_spec,
-        se=sim.get("standard_errors"),
-        missing_share=float(sim.get("missing_share", 0.0)),
-        missing_specimen_share=float(sim.get("missing_specimen_share", 0.0)),
-        model=str(sim.get("model", "bm")),
-        model_params=dict(sim.get("model_parameters", {})),
-        seed=int(seed_override if seed_override is not None else sim.get("seed", 0)),
-    )
-    if np.size(kwargs["mu"]) not in (1, k):
-        raise InputError(f"root_means must be one number or {k} numbers (one per trait).")
-    kwargs["replicates"] = int(sim.get("replicates", 1))
-    if kwargs["replicates"] < 1:
-        raise InputError("replicates must be at least 1.")
-    return kwargs, read_tree(tree_path)
-
-
 def add_simulate_arguments(parser: argparse.ArgumentParser) -> None:
     """Add the arguments of ``cladewise simulate SPEC --out DIR`` to ``parser``."""
     parser.add_argument("spec", type=Path, help="TOML file with [data] tree and [simulation]")
@@ -602,8 +483,8 @@ def add_simulate_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run_simulate(args: argparse.Namespace) -> int:
     """Run ``cladewise simulate``: simulate from a TOML spec and write the folder(s)."""
-    kwargs, tree = _dataset_from_spec(Path(args.spec), getattr(args, "seed", None))
-    reps = kwargs.pop("replicates")
+    spec = load_simulation_spec(Path(args.spec), getattr(args, "seed", None))
+    kwargs, tree, reps, seed = spec.settings, spec.tree, spec.replicates, spec.seed
     overwrite = bool(getattr(args, "overwrite", False))
     out = Path(args.out)
     if out.is_dir() and any(out.iterdir()) and not overwrite:
@@ -611,8 +492,7 @@ def run_simulate(args: argparse.Namespace) -> int:
             f"output folder {out} is not empty; choose a new folder or pass --overwrite."
         )
     # One generator across replicates so they are independent yet reproducible.
-    gen = np.random.default_rng(kwargs["seed"])
-    seed = kwargs.pop("seed")
+    gen = np.random.default_rng(seed)
     for msg in model_warnings(tree, kwargs["model"]):
         print(f"warning: {msg}")
     for r in range(reps):
