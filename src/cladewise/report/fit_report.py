@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import os
 import re
-import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -14,9 +12,11 @@ import numpy as np
 import pandas as pd
 
 from cladewise.errors import InputError
+from cladewise.inference.results import MARKER as MARKER_FILE
+from cladewise.inference.results import atomic_write, is_cladewise_output
 from cladewise.report import figures as F
 from cladewise.report.data import FitView, read_fit_folder
-from cladewise.report.html import MARKER, esc, figure_html, fmt, page, table_html
+from cladewise.report.html import esc, figure_html, fmt, page, table_html
 from cladewise.report.progress import Progress
 from cladewise.report.style import SavedFigure, save_figure
 
@@ -60,33 +60,16 @@ def write_fit_report(out_dir: str | Path) -> Path:
 
 # --------------------------------------------------------------------------- safety
 def _guard_outputs(out: Path) -> None:
-    """Refuse to replace files that cladewise did not write."""
-    target = out / REPORT_NAME
-    if target.exists():
-        try:
-            head = target.read_text(encoding="utf-8", errors="replace")[:400]
-        except OSError:
-            head = ""
-        if MARKER not in head:
-            raise InputError(
-                f"{str(target)!r} exists and was not written by cladewise; move or rename it, "
-                "then run the report again"
-            )
+    """Write only into a folder cladewise wrote (its marker), never over a user's files."""
+    if not is_cladewise_output(out):
+        raise InputError(
+            f"{str(out)!r} does not carry the cladewise marker ({MARKER_FILE}), so cladewise will not "
+            "write report files into it; refit into a new folder with 'cladewise fit SPEC --out DIR'"
+        )
     for sub in ("figures", "tables"):
         if (out / sub).exists() and not (out / sub).is_dir():
             raise InputError(f"{str(out / sub)!r} is a file, but the report needs a folder of that name; "
                              "move the file away")
-
-
-def _atomic_write(path: Path, text: str) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
 
 
 # --------------------------------------------------------------------------- words
@@ -505,7 +488,7 @@ def build_fit_report(out_dir: str | Path, progress: Progress | None = None) -> R
     title = "cladewise fit report"
     folder_name = out.resolve().name
     subtitle = f"Fit folder: {folder_name}. " + (view.info.get("description") or "")
-    _atomic_write(res.path, page(title, subtitle, sections))
+    atomic_write(res.path, page(title, subtitle, sections))
     res.timings["page"] = time.perf_counter() - t0
     res.timings["total"] = time.perf_counter() - t_start
     prog.done(f"wrote {res.path}")

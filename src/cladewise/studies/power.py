@@ -51,6 +51,7 @@ from scipy import stats
 
 from cladewise.inference.fit import json_default
 from cladewise.errors import InputError
+from cladewise.inference.results import atomic_write, check_output_folder
 from cladewise.data.trees import FlatTree
 
 __all__ = [
@@ -298,37 +299,32 @@ class PowerResult:
         return plot_power(self, ax=ax)
 
     def save(self, out_dir: str | Path, overwrite: bool = False) -> dict[str, Path]:
-        """Write power_table.csv, power_fits.csv, power.json, power.png and power.svg.
+        """Write power_table.csv, power_fits.csv, power.json, power.png and power.svg, all at once.
 
-        An existing non-empty folder is refused unless ``overwrite`` is true.
+        An existing folder is replaced only with ``overwrite`` and only when
+        cladewise wrote it (:func:`cladewise.inference.results.check_output_folder`).
         """
         out = _output_folder(out_dir, overwrite)
-        paths = {
-            "table": out / "power_table.csv", "fits": out / "power_fits.csv",
-            "json": out / "power.json", "png": out / "power.png", "svg": out / "power.svg",
-        }
-        self.table.to_csv(paths["table"], index=False)
-        self.fits.to_csv(paths["fits"], index=False)
-        doc = {"settings": self.settings, "table": self.table.to_dict(orient="records"),
-               "note": "Data simulated by cladewise for a power study; not observations."}
-        paths["json"].write_text(json.dumps(doc, indent=2, default=json_default) + "\n")
-        fig = self.plot()
-        fig.savefig(paths["png"], dpi=150)
-        fig.savefig(paths["svg"])
-        return paths
+        names = {"table": "power_table.csv", "fits": "power_fits.csv", "json": "power.json",
+                 "png": "power.png", "svg": "power.svg"}
+
+        def write(folder: Path) -> None:
+            self.table.to_csv(folder / names["table"], index=False)
+            self.fits.to_csv(folder / names["fits"], index=False)
+            doc = {"settings": self.settings, "table": self.table.to_dict(orient="records"),
+                   "note": "Data simulated by cladewise for a power study; not observations."}
+            (folder / names["json"]).write_text(json.dumps(doc, indent=2, default=json_default) + "\n")
+            fig = self.plot()
+            fig.savefig(folder / names["png"], dpi=150)
+            fig.savefig(folder / names["svg"])
+
+        atomic_write(out, write, what="power")
+        return {k: out / v for k, v in names.items()}
 
 
 def _output_folder(out_dir: str | Path, overwrite: bool) -> Path:
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise InputError(f"{out} exists and is not a folder; choose another --out")
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise InputError(
-            f"output folder {out} is not empty; choose a new folder or pass --overwrite "
-            "(overwrite=True) to replace its files"
-        )
-    out.mkdir(parents=True, exist_ok=True)
-    return out
+    """Check a power-study output folder before any work (see :func:`check_output_folder`)."""
+    return check_output_folder(out_dir, overwrite=overwrite, what="power study")
 
 
 def plot_power(result: PowerResult, ax: Any = None) -> Any:
