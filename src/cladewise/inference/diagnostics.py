@@ -83,8 +83,9 @@ def _chain_groups(post: Any) -> list[tuple[int | None, np.ndarray]]:
 
 def _group_stats(idata: az.InferenceData, names: list[str], chains: np.ndarray) -> tuple[pd.DataFrame | None, int, float]:
     post = idata.posterior.isel(chain=chains)
-    # correlation matrices have a constant diagonal: R-hat/ESS are NaN there, dropped later
-    summ = az.summary(post, var_names=names, kind="diagnostics") if names else None
+    # correlation matrices have a constant diagonal: R-hat/ESS are NaN there, dropped later;
+    # unrounded (az.summary rounds to 2 decimals by default, which hides an R-hat of 1.014)
+    summ = az.summary(post, var_names=names, kind="diagnostics", round_to="none") if names else None
     stats = idata.sample_stats.isel(chain=chains) if "sample_stats" in idata.groups() else None
     div = int(np.asarray(stats["diverging"]).sum()) if stats is not None and "diverging" in stats else 0
     bfmi = float("nan")
