@@ -198,6 +198,7 @@ def saved_fits(tmp_path_factory):
     return root, table, corr
 
 
+@pytest.mark.slow
 def test_fit_folder_describes_itself(saved_fits):
     import arviz as az
 
@@ -213,6 +214,7 @@ def test_fit_folder_describes_itself(saved_fits):
     assert np.allclose(se.loc[want.index].to_numpy(), want.to_numpy())
 
 
+@pytest.mark.slow
 def test_report_and_compare_work_without_the_data_files(saved_fits, tmp_path):
     from cladewise.evaluation.loo import compare_fits
     from cladewise.report import write_fit_report
@@ -253,6 +255,7 @@ def _interrupting_sampler(monkeypatch, after_seconds=4.0):
     monkeypatch.setattr(nutpie, "sample", slow)
 
 
+@pytest.mark.slow
 def test_interrupt_saves_nothing_by_default(tmp_path, monkeypatch):
     _write_data(tmp_path / "data", n=8)
     _interrupting_sampler(monkeypatch)
@@ -264,6 +267,7 @@ def test_interrupt_saves_nothing_by_default(tmp_path, monkeypatch):
     assert not [p for p in tmp_path.iterdir() if ".partial-" in p.name]
 
 
+@pytest.mark.slow
 def test_interrupt_keeps_partial_draws_when_asked(tmp_path, monkeypatch):
     _write_data(tmp_path / "data", n=8)
     _interrupting_sampler(monkeypatch)
@@ -279,3 +283,80 @@ def test_interrupt_keeps_partial_draws_when_asked(tmp_path, monkeypatch):
     post = az.from_netcdf(tmp_path / "fit" / "posterior.nc").posterior
     assert 0 < post.sizes["draw"] < 1_000_000
     assert np.isfinite(post["evo_corr"].values).all()
+
+
+# --------------------------------------------------------------------------- cheap versions (no sampler)
+def _fake_draws(built, n_chains=2, n_draws=6):
+    """Draws that stand in for a sampler's: prior draws of every variable."""
+    import pymc as pm
+
+    model = built.model
+    names = [rv.name for rv in model.free_RVs] + [d.name for d in model.deterministics]
+    prior = pm.sample_prior_predictive(draws=n_chains * n_draws, model=model, var_names=names, random_seed=1,
+                                       compile_kwargs={"mode": "FAST_COMPILE"}).prior
+    post = prior.stack(s=("chain", "draw")).drop_vars(["s", "chain", "draw"])
+    post = post.assign_coords(s=pd.MultiIndex.from_product([range(n_chains), range(n_draws)],
+                                                           names=["chain", "draw"])).unstack("s")
+    post = post.transpose("chain", "draw", ...)
+    rng = np.random.default_rng(0)
+    stats = {"diverging": (("chain", "draw"), np.zeros((n_chains, n_draws), bool)),
+             "energy": (("chain", "draw"), rng.standard_normal((n_chains, n_draws)))}
+    import arviz as az
+    import xarray as xr
+
+    return az.InferenceData(posterior=post, sample_stats=xr.Dataset(stats, coords={
+        "chain": np.arange(n_chains), "draw": np.arange(n_draws)}))
+
+
+def _no_sampler(monkeypatch, interrupt: bool):
+    """nutpie replaced: no compile; sample() returns stand-in draws, after a Ctrl-C if asked.
+
+    Like nutpie, the stand-in catches the KeyboardInterrupt and returns the draws
+    made so far: the pipeline must notice the interrupt all the same.
+    """
+    import nutpie
+
+    import cladewise.inference.sampling as sampling
+
+    def fake_sample(built, **kw):
+        draws = _fake_draws(built)
+        if interrupt:
+            try:
+                os.kill(os.getpid(), signal.SIGINT)
+                for _ in range(1000):  # the handler runs between bytecodes
+                    pass
+            except KeyboardInterrupt:
+                return draws
+        return draws
+
+    # "compiling" hands the built model itself to the stand-in sampler
+    monkeypatch.setattr(sampling, "compile_model", lambda built, sampler="nutpie": built)
+    monkeypatch.setattr(nutpie, "sample", fake_sample)
+
+
+def test_fit_folder_is_self_describing_cheap(tmp_path, monkeypatch):
+    from cladewise.report.data import read_fit_folder
+
+    table = _write_data(tmp_path / "data", n=8)
+    _no_sampler(monkeypatch, interrupt=False)
+    fit_from_spec(_spec(tmp_path), out=tmp_path / "fit", progress=False)
+    shutil.move(str(tmp_path / "data"), str(tmp_path / "elsewhere"))
+    view = read_fit_folder(tmp_path / "fit")
+    want = table.set_index("species").loc[view.species, ["a_se", "b_se"]].to_numpy()
+    assert view.se is not None and np.allclose(view.se, want)
+    assert view.tree is not None and view.tree.n_tips == 8
+    js = json.loads((tmp_path / "fit" / "summary.json").read_text())
+    assert js["spec_text"] == (tmp_path / "spec.toml").read_text() and js["tree_newick"].endswith(";")
+
+
+def test_interrupt_is_noticed_although_the_sampler_swallows_it(tmp_path, monkeypatch):
+    _write_data(tmp_path / "data", n=8)
+    _no_sampler(monkeypatch, interrupt=True)
+    with pytest.raises(FitInterrupted, match="nothing was saved"):
+        fit_from_spec(_spec(tmp_path), out=tmp_path / "fit", progress=False)
+    assert not (tmp_path / "fit").exists()
+    with pytest.raises(FitInterrupted, match="marked partial") as err:
+        fit_from_spec(_spec(tmp_path), out=tmp_path / "fit", keep_partial=True, progress=False)
+    assert err.value.saved == (tmp_path / "fit").resolve()
+    js = json.loads((tmp_path / "fit" / "summary.json").read_text())
+    assert js["partial"] is True and not js["diagnostics"]["ok"]

@@ -483,7 +483,7 @@ def run_power_study(
 
 def _simulate(tree: FlatTree, R: np.ndarray, mu: np.ndarray, se: np.ndarray | None,
               gen: np.random.Generator, n: int) -> np.ndarray:
-    from cladewise.studies.simulate import simulate_traits
+    from cladewise.model.simulate import simulate_traits
 
     return simulate_traits(tree, R, mu, se=se, rng=gen, n_reps=n)
 
