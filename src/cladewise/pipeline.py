@@ -270,8 +270,10 @@ class CheckReport:
             where = f"over {self.n_trees} trees" if self.tree_sample else "on one tree"
             lines += ["", f"Model: {self.model.get('kind')} ({self.model.get('evolution')}), fitted {where}; "
                           "it builds and its log density and gradient are finite at the starting point."]
-        if self.problems:
-            lines += ["", "Warnings:"] + [f"  - {p}" for p in self.problems]
+        shown = set(getattr(self.data_summary, "warnings", []) or [])  # printed with the summary
+        extra = [p for p in self.problems if p not in shown]
+        if extra:
+            lines += ["", "Warnings:"] + [f"  - {p}" for p in extra]
         return "\n".join(lines)
 
 

@@ -43,7 +43,7 @@ def test_user_folder_is_refused_even_with_overwrite(tmp_path):
         with pytest.raises(InputError) as err:
             check_output_folder(d, overwrite=overwrite, what="fit")
         msg = str(err.value)
-        assert "did not write" in msg and "notes.txt" in msg and "photos" in msg
+        assert "did not write" in msg and "notes.txt" in msg and "photos" in msg and "--overwrite" in msg
     assert _snapshot(d) == before
 
 
@@ -108,7 +108,7 @@ def test_marker_folder_is_replaced_with_overwrite_only(tmp_path):
     assert is_cladewise_output(out)
     marker = json.loads((out / MARKER).read_text())
     assert marker["written_by"] == "cladewise fit" and marker["cladewise_version"]
-    with pytest.raises(InputError, match="pass --overwrite"):
+    with pytest.raises(InputError, match="not empty: it holds an earlier cladewise fit.*pass --overwrite"):
         check_output_folder(out, overwrite=False, what="fit")
     assert check_output_folder(out, overwrite=True) == out.resolve()
     atomic_write(out, lambda f: (f / "summary.json").write_text('{"new": 2}'), what="fit")

@@ -148,13 +148,13 @@ def check_output_folder(
         if entries:
             if not is_cladewise_output(target):
                 raise InputError(
-                    f"--out {shown} already holds files that cladewise did not write ({_few(entries)}); "
-                    "cladewise replaces only folders it wrote itself, even with --overwrite: "
-                    "give a new folder name"
+                    f"--out {shown} is not empty: it holds files that cladewise did not write "
+                    f"({_few(entries)}); cladewise replaces only folders it wrote itself, so --overwrite "
+                    "cannot be used here either: give a new folder name"
                 )
             if not overwrite and not add_to:
                 raise InputError(
-                    f"--out {shown} already holds a cladewise {what} ({_few(entries)}); "
+                    f"--out {shown} is not empty: it holds an earlier cladewise {what} ({_few(entries)}); "
                     "pass --overwrite to replace it, or give a new folder name"
                 )
         _probe_writable(target if add_to else target.parent, shown)
