@@ -12,11 +12,10 @@ import numpy as np
 import pandas as pd
 
 from cladewise.errors import InputError
-from cladewise.inference.results import MARKER as MARKER_FILE
 from cladewise.inference.results import atomic_write, is_cladewise_output
 from cladewise.report import figures as F
 from cladewise.report.data import FitView, read_fit_folder
-from cladewise.report.html import esc, figure_html, fmt, page, table_html
+from cladewise.report.html import MARKER, esc, figure_html, fmt, page, table_html
 from cladewise.report.progress import Progress
 from cladewise.report.style import SavedFigure, save_figure
 
@@ -60,12 +59,23 @@ def write_fit_report(out_dir: str | Path) -> Path:
 
 # --------------------------------------------------------------------------- safety
 def _guard_outputs(out: Path) -> None:
-    """Write only into a folder cladewise wrote (its marker), never over a user's files."""
-    if not is_cladewise_output(out):
-        raise InputError(
-            f"{str(out)!r} does not carry the cladewise marker ({MARKER_FILE}), so cladewise will not "
-            "write report files into it; refit into a new folder with 'cladewise fit SPEC --out DIR'"
-        )
+    """Refuse to replace files that cladewise did not write.
+
+    A fit folder carrying the cladewise marker is cladewise's own; an older fit folder
+    (written before the marker existed) is written into only when its report.html,
+    if any, carries the page marker of a cladewise report.
+    """
+    target = out / REPORT_NAME
+    if target.exists() and not is_cladewise_output(out):
+        try:
+            head = target.read_text(encoding="utf-8", errors="replace")[:400]
+        except OSError:
+            head = ""
+        if MARKER not in head:
+            raise InputError(
+                f"{str(target)!r} exists and was not written by cladewise; move or rename it, "
+                "then run the report again"
+            )
     for sub in ("figures", "tables"):
         if (out / sub).exists() and not (out / sub).is_dir():
             raise InputError(f"{str(out / sub)!r} is a file, but the report needs a folder of that name; "
