@@ -11,8 +11,6 @@ through a module-scoped fixture.
 from __future__ import annotations
 
 import json
-import sys
-from pathlib import Path
 
 import arviz as az
 import numpy as np

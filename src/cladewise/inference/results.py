@@ -226,18 +226,32 @@ def atomic_write(target: str | Path, content: str | bytes | Callable[[Path], Any
 
 # --------------------------------------------------------------------------- fit folder
 def load_fit(out_dir: str | Path) -> tuple[Any, dict[str, Any]]:
-    """Read a saved fit folder: (InferenceData, summary.json contents)."""
+    """Read a saved fit folder: (InferenceData, summary.json contents).
+
+    Raises
+    ------
+    InputError
+        Not a fit folder, unreadable JSON or netCDF, or no posterior group.
+    """
     import arviz as az
 
     out = Path(out_dir)
     nc, js = out / "posterior.nc", out / "summary.json"
-    if not nc.is_file() or not js.is_file():
+    if not out.is_dir() or not nc.is_file() or not js.is_file():
         raise InputError(
-            f"{str(out)!r} is not a cladewise fit folder (expected posterior.nc and summary.json); "
-            "run 'cladewise fit SPEC --out DIR' first"
+            f"{str(out)!r} is not a cladewise fit folder (expected posterior.nc and summary.json "
+            "inside); run 'cladewise fit SPEC --out DIR' first and pass that DIR"
         )
     try:
         info = json.loads(js.read_text(encoding="utf-8"))
     except (OSError, ValueError) as exc:
         raise InputError(f"{str(js)!r} could not be read as JSON ({exc}); refit to recreate it") from None
-    return az.from_netcdf(nc), info
+    if not isinstance(info, dict):
+        raise InputError(f"{str(js)!r} does not hold a JSON object; refit to recreate it")
+    try:
+        idata = az.from_netcdf(nc)
+    except Exception as exc:  # netCDF errors come in many types
+        raise InputError(f"{str(nc)!r} could not be read ({exc}); refit to recreate it") from None
+    if "posterior" not in idata.groups():
+        raise InputError(f"{str(nc)!r} has no posterior group; refit to recreate it")
+    return idata, info

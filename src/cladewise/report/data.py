@@ -8,7 +8,6 @@ as ``None`` so each section can say what it could not show instead of failing.
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -17,7 +16,7 @@ import arviz as az
 import numpy as np
 import pandas as pd
 
-from cladewise.errors import InputError
+from cladewise.inference.results import load_fit
 from cladewise.data.trees import FlatTree
 
 __all__ = ["FitView", "read_fit_folder"]
@@ -59,24 +58,7 @@ def _species_from(idata: az.InferenceData, info: dict[str, Any]) -> list[str]:
 def read_fit_folder(folder: str | Path) -> FitView:
     """Read posterior.nc, summary.json and summary.csv of a fit folder."""
     out = Path(folder)
-    nc, js = out / "posterior.nc", out / "summary.json"
-    if not out.is_dir() or not nc.is_file() or not js.is_file():
-        raise InputError(
-            f"{str(out)!r} is not a cladewise fit folder (expected posterior.nc and summary.json "
-            "inside); run 'cladewise fit SPEC --out DIR' first and pass that DIR"
-        )
-    try:
-        info = json.loads(js.read_text(encoding="utf-8"))
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{str(js)!r} could not be read as JSON ({exc}); refit to recreate it") from None
-    if not isinstance(info, dict):
-        raise InputError(f"{str(js)!r} does not hold a JSON object; refit to recreate it")
-    try:
-        idata = az.from_netcdf(nc)
-    except Exception as exc:  # netCDF errors come in many types
-        raise InputError(f"{str(nc)!r} could not be read ({exc}); refit to recreate it") from None
-    if "posterior" not in idata.groups():
-        raise InputError(f"{str(nc)!r} has no posterior group; refit to recreate it")
+    idata, info = load_fit(out)
 
     csv = out / "summary.csv"
     if info.get("quantities"):

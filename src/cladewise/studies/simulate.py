@@ -67,7 +67,6 @@ from cladewise.inference.results import atomic_write, check_output_folder, write
 from cladewise.model.evolution import check_model_name, model_warnings, transformed_lengths
 from cladewise.data.trees import FlatTree, format_newick, read_tree
 from cladewise.model.simulate import (
-    RngLike,
     as_rng,
     branch_lengths,
     matrix_root,
