@@ -179,6 +179,19 @@ def test_starting_point_check_names_the_term_and_cause(tmp_path, monkeypatch):
     assert compiled == []  # refused before the sampler was compiled
 
 
+def test_too_few_species_and_zero_height_tree_are_refused(tmp_path):
+    _write_data(tmp_path / "few" / "data", n=2)
+    with pytest.raises(InputError, match="only 2 species matched.*at least 3"):
+        check_spec(_spec(tmp_path / "few"))
+    _write_data(tmp_path / "flat" / "data")
+    tree = (tmp_path / "flat" / "data" / "tree.nwk").read_text()
+    import re
+
+    (tmp_path / "flat" / "data" / "tree.nwk").write_text(re.sub(r":[0-9.eE+-]+", ":0", tree))
+    with pytest.raises(InputError, match="zero height|tree height is 0"):
+        check_spec(_spec(tmp_path / "flat"))
+
+
 def test_constant_trait_is_refused(tmp_path):
     _write_data(tmp_path / "data", constant=True)
     with pytest.raises(InputError, match="variance|constant"):
