@@ -25,7 +25,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from cladewise.model.build import ModelData, ModelSpec, build_model  # noqa: E402
 from cladewise.inference.sampling import SamplingOptions, compile_model, diagnose, sample  # noqa: E402
-from cladewise.studies.simulate import simulate_traits  # noqa: E402
+from cladewise.model.simulate import simulate_traits  # noqa: E402
 from treegen import random_tree  # noqa: E402
 
 

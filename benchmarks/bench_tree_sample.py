@@ -24,7 +24,7 @@ from cladewise.pipeline import prepare_analysis
 from cladewise.model.build import build_model
 from cladewise.inference.fit import finish_fit
 from cladewise.inference.sampling import compile_model, sample
-from cladewise.inference.treesample import fit_tree_sample
+from cladewise.inference.pooled import fit_tree_sample
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -10,10 +10,7 @@ through a module-scoped fixture.
 
 from __future__ import annotations
 
-import argparse
 import json
-import sys
-from pathlib import Path
 
 import arviz as az
 import numpy as np
@@ -28,19 +25,11 @@ from cladewise.errors import InputError
 from cladewise.model.evolution import transformed_lengths
 from cladewise.inference.fit import LOGLIK_VAR, finish_fit
 from cladewise.inference.sampling import SamplingOptions
-from cladewise.studies.simulate import simulate_traits
-from cladewise.inference.treesample import (
-    add_tree_sample_arguments,
-    align_trees,
-    choose_trees,
-    fit_spec_tree_sample,
-    fit_tree_sample,
-    pad_tree,
-    pool_tree_fits,
-    tree_disagreement,
-    tree_variance_share,
-    uses_tree_sample,
-)
+from cladewise.model.simulate import simulate_traits
+from cladewise.inference.pooled import fit_tree_sample, pool_tree_fits
+from cladewise.inference.tree_align import align_trees, choose_trees, pad_tree
+from cladewise.inference.treesample import tree_disagreement, tree_variance_share
+from cladewise.pipeline import fit_from_spec
 from cladewise.data.trees import FlatTree, covariance, order_tips
 
 from treegen import random_tree
@@ -281,14 +270,6 @@ def test_disagreement_warnings():
     assert tree_disagreement(rates) == []
 
 
-def test_command_line_arguments():
-    p = argparse.ArgumentParser()
-    add_tree_sample_arguments(p)
-    a = p.parse_args(["--trees", "x.nex", "--n-trees", "5"])
-    assert a.trees == "x.nex" and a.n_trees == 5 and uses_tree_sample(a)
-    assert not uses_tree_sample(p.parse_args([]))
-
-
 def test_spec_without_tree_sample(tmp_path):
     tree = random_tree(5, np.random.default_rng(0), True)
     from cladewise.data.treefiles import format_newick
@@ -297,6 +278,6 @@ def test_spec_without_tree_sample(tmp_path):
     (tmp_path / "d.csv").write_text("species,a,b\n" + "".join(f"{n},{i},{i * i}\n" for i, n in enumerate(tree.tip_names)))
     (tmp_path / "s.toml").write_text('[data]\ntree = "t.nwk"\ntraits = "d.csv"\n[model]\nkind = "correlated"\ntraits = ["a", "b"]\n')
     with pytest.raises(InputError, match="no tree sample"):
-        fit_spec_tree_sample(tmp_path / "s.toml")
+        fit_from_spec(tmp_path / "s.toml", n_trees=2)
     with pytest.raises(InputError, match="not found"):
-        fit_spec_tree_sample(tmp_path / "s.toml", trees=tmp_path / "missing.nex")
+        fit_from_spec(tmp_path / "s.toml", trees=tmp_path / "missing.nex")

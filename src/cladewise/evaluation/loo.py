@@ -32,6 +32,7 @@ import xarray as xr
 from scipy.special import logsumexp
 
 from cladewise.errors import InputError
+from cladewise.inference.draws import LOGLIK_VAR, EngineDraws, pointwise_loglik
 
 __all__ = [
     "LooResult",
@@ -236,7 +237,8 @@ class _FitView:
 
 
 def _view(fit: Any, label: str = "fit") -> _FitView:
-    from cladewise.inference.fit import FitResult, load_fit
+    from cladewise.inference.fit import FitResult
+    from cladewise.inference.results import load_fit
 
     if isinstance(fit, FitResult):
         return _FitView(label, fit.idata, dict(fit.info), fit.built)
@@ -262,8 +264,6 @@ def _loglik_matrix(view: _FitView) -> xr.DataArray:
     idata = view.idata
     if "log_likelihood" in idata.groups():
         ds = idata.log_likelihood
-        from cladewise.inference.fit import LOGLIK_VAR
-
         names = [LOGLIK_VAR] if LOGLIK_VAR in ds.data_vars else list(ds.data_vars)
         for name in names:
             da = ds[name]
@@ -272,7 +272,7 @@ def _loglik_matrix(view: _FitView) -> xr.DataArray:
     if view.built is not None:
         # A fit whose log_likelihood group is missing can still be scored when the
         # model is at hand: recompute the conditionals from the posterior draws.
-        return _pointwise_from_draws(view.built, idata, _EngineCache(view.built))
+        return pointwise_loglik(view.built, idata)
     raise InputError(
         f"{view.label}: the fit has no per-species log-likelihood (log_likelihood group with "
         "dims chain, draw, species); refit it with the current cladewise so the group is saved"
@@ -569,50 +569,6 @@ def _fit_like(view: _FitView) -> Any:
     return FitResult(idata=view.idata, summary=pd.DataFrame(), diagnostics=None, built=view.built, info=view.info)
 
 
-# --------------------------------------------------------------------------- engine per draw
-class _EngineCache:
-    """Compiles a model's engine-input function once and evaluates it per draw."""
-
-    def __init__(self, built: Any) -> None:
-        self.built = built
-        self.fn = built.engine_function()
-        self.names = [rv.name for rv in built.model.free_RVs]
-
-    def draws(self, idata: az.InferenceData) -> tuple[dict[str, np.ndarray], tuple[int, int]]:
-        post = idata.posterior
-        missing = [n for n in self.names if n not in post]
-        if missing:
-            raise InputError(
-                f"the posterior lacks {missing}: these draws do not belong to this model"
-            )
-        nc, nd = int(post.sizes["chain"]), int(post.sizes["draw"])
-        arrays = {n: post[n].values.reshape((nc * nd,) + post[n].shape[2:]) for n in self.names}
-        outs = [self.fn({n: arrays[n][s] for n in self.names}) for s in range(nc * nd)]
-        return {k: np.stack([o[k] for o in outs]) for k in outs[0]}, (nc, nd)
-
-
-def _pointwise_from_draws(built: Any, idata: az.InferenceData, cache: _EngineCache) -> xr.DataArray:
-    """log p(y_i | y_-i, theta_s) for every draw s and species i (full data)."""
-    from cladewise.engine import loo_logdensity_draws
-
-    d, (nc, nd) = cache.draws(idata)
-    parent = built.data.tree.parent
-    y = d["y"]
-    if np.allclose(y, y[:1]):
-        ll = loo_logdensity_draws(parent, d["lengths"], y[0], built.observed, d["R"], d["E"], d["err_var"], d["mu"])
-    else:
-        # regression residuals y - X beta change with every draw
-        ll = np.stack([
-            loo_logdensity_draws(parent, d["lengths"][s:s + 1], y[s], built.observed, d["R"][s:s + 1],
-                                 d["E"][s:s + 1], d["err_var"][s:s + 1], d["mu"][s:s + 1])[0]
-            for s in range(y.shape[0])
-        ])
-    return xr.DataArray(
-        ll.reshape(nc, nd, -1), dims=("chain", "draw", "species"),
-        coords={"chain": np.arange(nc), "draw": np.arange(nd), "species": list(built.species)},
-    )
-
-
 # --------------------------------------------------------------------------- exact refits
 _HOLDOUT = "holdout_observed"
 
@@ -716,14 +672,14 @@ def refit_influential(
         return loo
     hb = _holdout_model(built)
     compiled = compile_model(hb, opts.sampler)
-    cache = _EngineCache(hb)
+    cache = EngineDraws(hb)
     exact: dict[str, float] = {}
     for name in chosen:
         i = all_species.index(name)
         mask = hb.observed.astype("float64")
         mask[i, :] = 0.0
         post = sample(hb, opts, compiled=compiled, tree_values={_HOLDOUT: mask})
-        ll_i = _pointwise_from_draws(hb, post, cache).values[:, :, i].ravel()
+        ll_i = pointwise_loglik(hb, post, cache).values[:, :, i].ravel()
         exact[name] = float(logsumexp(ll_i) - math.log(ll_i.size))
     return _replace_pointwise(loo, exact, note)
 
@@ -840,7 +796,7 @@ def loo_clades(
 
     tree = built.data.tree
     groups = _clade_groups(tree, clades, cut_height)
-    cache = _EngineCache(built)
+    cache = EngineDraws(built)
     d, (nc, nd) = cache.draws(idata)
     S = nc * nd
     parent = tree.parent

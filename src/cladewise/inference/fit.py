@@ -11,48 +11,42 @@ data without glue.
 from __future__ import annotations
 
 import json
-import os
-import shutil
-import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
 import arviz as az
 import numpy as np
 import pandas as pd
 import xarray as xr
 
+from cladewise.errors import FitInterrupted
 from cladewise.model.build import BuiltModel, ModelData, ModelSpec, build_model
-from cladewise.errors import InputError
-from cladewise.inference.sampling import Diagnostics, SamplingOptions, diagnose, sample
+from cladewise.inference.diagnostics import Diagnostics, diagnose
+from cladewise.inference.draws import LOGLIK_VAR, EngineDraws, engine_draws, pointwise_loglik
+from cladewise.inference.results import atomic_write, check_output_folder, load_fit
+from cladewise.inference.sampling import SamplingOptions, sample
 from cladewise.model.describe import describe_model
 from cladewise.model.quantities import quantity_elements, signed_names
 
 __all__ = [
     "FitResult",
-    "check_output_folder",
     "fit",
     "finish_fit",
-    "pointwise_loglik",
+    "posterior_predictive",
     "summarise",
     "iter_quantities",
-    "load_fit",
     "HDI_PROB",
+    # defined elsewhere, importable from here as before
+    "check_output_folder",
+    "load_fit",
+    "pointwise_loglik",
+    "engine_draws",
     "LOGLIK_VAR",
 ]
 
 HDI_PROB = 0.95
-LOGLIK_VAR = "y"  # log-likelihood variable (dims chain, draw, species), named like observed_data["y"]
-
-
-def check_output_folder(out: Path, overwrite: bool) -> None:
-    """Refuse an existing non-empty output folder unless ``overwrite`` (never lose results)."""
-    if out.exists() and any(out.iterdir()) and not overwrite:
-        raise InputError(
-            f"output folder {str(out)!r} already holds files; choose a new folder or pass --overwrite"
-        )
 
 
 @dataclass
@@ -65,28 +59,33 @@ class FitResult:
     built: BuiltModel | None
     info: dict[str, Any] = field(default_factory=dict)
 
-    def save(self, out_dir: str | Path, overwrite: bool = False) -> Path:
+    def save(self, out_dir: str | Path, overwrite: bool = False, inputs: Sequence[str | Path] = ()) -> Path:
         """Write posterior.nc, summary.csv and summary.json into ``out_dir``.
 
-        The folder is written in full next to its final place and then renamed, so a
-        stopped run never leaves a half-written fit. An existing non-empty folder is
-        refused unless ``overwrite`` is true.
+        The folder is written in full next to its final place and then swapped in
+        (:func:`~cladewise.inference.results.atomic_write`), so a stopped run never
+        leaves a half-written fit. An existing folder is replaced only with
+        ``overwrite`` and only when cladewise wrote it
+        (:func:`~cladewise.inference.results.check_output_folder`).
         """
-        out = Path(out_dir)
-        check_output_folder(out, overwrite)
-        out.parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
-        try:
-            self.idata.to_netcdf(tmp / "posterior.nc")
-            self.summary.to_csv(tmp / "summary.csv", index=False)
-            (tmp / "summary.json").write_text(json.dumps(self.to_json(), indent=2, default=json_default))
-            if out.exists():
-                shutil.rmtree(out)
-            os.replace(tmp, out)
-        except BaseException:
-            shutil.rmtree(tmp, ignore_errors=True)
-            raise
-        return out
+        check_output_folder(out_dir, overwrite=overwrite, inputs=inputs, what="fit")
+        return atomic_write(out_dir, self.write_files, what="fit")
+
+    def write_files(self, folder: Path) -> None:
+        """Write the fit's files into an existing (staging) folder."""
+        folder = Path(folder)
+        self.idata.posterior.attrs["cladewise_info"] = json.dumps(self.info, default=json_default)
+        self.idata.to_netcdf(folder / "posterior.nc")
+        self.summary.to_csv(folder / "summary.csv", index=False)
+        (folder / "summary.json").write_text(json.dumps(self.to_json(), indent=2, default=json_default))
+
+    def mark_partial(self, reason: str) -> None:
+        """Mark this fit as built from the draws made before an interrupt."""
+        self.info["partial"] = True
+        self.info["partial_reason"] = reason
+        self.info["notes"] = list(self.info.get("notes", [])) + [f"PARTIAL: {reason}"]
+        if self.diagnostics is not None:
+            self.diagnostics.problems.insert(0, f"partial fit: {reason}")
 
     def to_json(self) -> dict[str, Any]:
         """The contents of summary.json (schema in the README)."""
@@ -114,12 +113,15 @@ class FitResult:
             "spec_text": info.get("spec_text"),
             "command": info.get("command"),
             "environment": info.get("environment", {}),
+            "tree_newick": info.get("tree_newick"),
+            "partial": bool(info.get("partial", False)),
             "cautions": CAUTIONS,
         }
 
     def to_text(self) -> str:
         """Results in words and a table, for the terminal."""
-        lines = [
+        lines = [PARTIAL_NOTE, ""] if self.info.get("partial") else []
+        lines += [
             f"Model: {self.info.get('description', '')}",
             f"Species: {self.info.get('n_species')}  Traits: {', '.join(self.info.get('traits', []))}",
             "",
@@ -135,6 +137,9 @@ class FitResult:
         lines += ["", CAUTIONS]
         return "\n".join(lines)
 
+
+PARTIAL_NOTE = ("PARTIAL FIT: sampling was interrupted; these are the draws made before the "
+                "interrupt, not a finished fit. Refit to completion before reporting anything.")
 
 CAUTIONS = (
     "Cautions: an evolutionary correlation is not evidence that one trait causes the other; "
@@ -166,65 +171,17 @@ def _format_table(df: pd.DataFrame) -> str:
         return view.to_string(index=False, float_format=lambda v: f"{v:.3g}", na_rep="")
 
 
-# --------------------------------------------------------------------------- LOO terms
-def _posterior_points(idata: az.InferenceData, built: BuiltModel) -> tuple[list[dict[str, np.ndarray]], tuple[int, int]]:
-    post = idata.posterior
-    names = [rv.name for rv in built.model.free_RVs]
-    nc, nd = post.sizes["chain"], post.sizes["draw"]
-    arrays = {n: post[n].values.reshape((nc * nd,) + post[n].shape[2:]) for n in names}
-    points = [{n: arrays[n][s] for n in names} for s in range(nc * nd)]
-    return points, (nc, nd)
-
-
-def engine_draws(built: BuiltModel, idata: az.InferenceData) -> tuple[dict[str, np.ndarray], tuple[int, int]]:
-    """Per-draw engine inputs (lengths, y, R, E, err_var, mu) stacked over draws."""
-    fn = built.engine_function()
-    points, shape = _posterior_points(idata, built)
-    outs = [fn(p) for p in points]
-    stacked = {k: np.stack([o[k] for o in outs]) for k in outs[0]}
-    return stacked, shape
-
-
-def pointwise_loglik(built: BuiltModel, idata: az.InferenceData) -> xr.DataArray:
-    """Leave-one-species-out conditional log density per chain, draw and species.
-
-    ``log p(y_i | y_-i, theta)`` with measurement error included: for joint models
-    all of the species' observed traits, for a regression the response given the
-    predictors (Bürkner, Gabry & Vehtari 2021). Linear in the number of species.
-    """
-    from cladewise.engine import loo_logdensity_draws
-
-    d, (nc, nd) = engine_draws(built, idata)
-    parent = built.data.tree.parent
-    y = d["y"]
-    if y.ndim == 3 and np.allclose(y, y[:1]):
-        y = y[0]
-    if y.ndim == 3:
-        # regression residuals differ per draw: one call per draw
-        ll = np.stack([
-            loo_logdensity_draws(parent, d["lengths"][s:s + 1], y[s], built.observed, d["R"][s:s + 1],
-                                 d["E"][s:s + 1], d["err_var"][s:s + 1], d["mu"][s:s + 1])[0]
-            for s in range(y.shape[0])
-        ])
-    else:
-        ll = loo_logdensity_draws(parent, d["lengths"], y, built.observed, d["R"], d["E"], d["err_var"], d["mu"])
-    ll = ll.reshape(nc, nd, -1)
-    return xr.DataArray(
-        ll, dims=("chain", "draw", "species"),
-        coords={"chain": np.arange(nc), "draw": np.arange(nd), "species": built.species},
-        name=LOGLIK_VAR,
-    )
-
-
-def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: int = 200, seed: int = 0) -> xr.DataArray:
+# --------------------------------------------------------------------------- posterior predictive
+def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: int = 200, seed: int = 0,
+                         engine: EngineDraws | None = None) -> xr.DataArray:
     """Replicated species data (means as they would be measured) for a subset of draws.
 
     Each replicate is a fresh draw of every species' values from the fitted model:
     evolution on the tree, species-level deviation and measurement error.
     """
-    from cladewise.studies.simulate import simulate_traits
+    from cladewise.model.simulate import simulate_traits
 
-    d, (nc, nd) = engine_draws(built, idata)
+    d, (nc, nd) = engine_draws(built, idata, engine)
     rng = np.random.default_rng(seed)
     total = nc * nd
     pick = np.sort(rng.choice(total, size=min(n_draws, total), replace=False))
@@ -308,10 +265,20 @@ def finish_fit(
     options: SamplingOptions,
     timing: dict[str, float] | None = None,
     predictive_draws: int = 200,
+    engine: EngineDraws | None = None,
 ) -> FitResult:
-    """Add log-likelihood, observed data and posterior predictive; summarise."""
+    """Add log-likelihood, observed and constant data and posterior predictive; summarise.
+
+    The constant data make the fit folder self-describing: missing-cell mask,
+    standard errors, specimen counts and within-species variances, regression
+    design and the tree; ``info`` adds the tree as Newick. ``engine`` reuses a
+    compiled :class:`~cladewise.inference.draws.EngineDraws` (one per tree sample).
+    """
+    from cladewise.data.treefiles import format_newick
+
     t0 = time.perf_counter()
-    ll = pointwise_loglik(built, idata)
+    engine = engine or EngineDraws(built)
+    ll = pointwise_loglik(built, idata, engine)
     _set_group(idata, "log_likelihood", xr.Dataset({LOGLIK_VAR: ll}))
     coords = {"species": built.species, "trait": built.traits}
     _set_group(idata, "observed_data", xr.Dataset({
@@ -322,15 +289,16 @@ def finish_fit(
         "tree_parent": xr.DataArray(built.data.tree.parent, dims=("node",)),
         "tree_length": xr.DataArray(built.data.tree.length, dims=("node",)),
     }
-    se = built.data.se
-    if se is not None and all(t in se.columns for t in built.traits):
-        const["se"] = xr.DataArray(se[built.traits].to_numpy(dtype=float), dims=("species", "trait"), coords=coords)
+    for name, frame in (("se", built.data.se), ("n_specimens", built.data.n), ("within_var", built.data.sample_var)):
+        if frame is not None and all(t in frame.columns for t in built.traits):
+            const[name] = xr.DataArray(frame[built.traits].to_numpy(dtype=float), dims=("species", "trait"),
+                                       coords=coords)
     if built.design is not None:
         const["design"] = xr.DataArray(built.design, dims=("species", "term"),
                                        coords={"species": built.species, "term": built.predictors})
     _set_group(idata, "constant_data", xr.Dataset(const))
     if predictive_draws:
-        yrep = posterior_predictive(built, idata, n_draws=predictive_draws, seed=options.seed)
+        yrep = posterior_predictive(built, idata, n_draws=predictive_draws, seed=options.seed, engine=engine)
         _set_group(idata, "posterior_predictive", xr.Dataset({"y_rep": yrep}))
     t_post = time.perf_counter() - t0
     diag = diagnose(idata, built.summary_vars)
@@ -348,6 +316,7 @@ def finish_fit(
         "notes": built.notes,
         "sampling": options.__dict__,
         "timing": {**(timing or {}), "postprocess": t_post},
+        "tree_newick": format_newick(built.data.tree, digits=17),
     }
     idata.posterior.attrs["cladewise_info"] = json.dumps(info, default=json_default)
     return FitResult(idata=idata, summary=summary, diagnostics=diag, built=built, info=info)
@@ -367,8 +336,11 @@ def fit(
     options: SamplingOptions | None = None,
     likelihood: str = "tree",
     predictive_draws: int = 200,
+    *,
+    built: BuiltModel | None = None,
+    keep_partial: bool = False,
 ) -> FitResult:
-    """Build a model, sample it and return the finished :class:`FitResult`.
+    """Build a model, check its starting point, sample it and return the :class:`FitResult`.
 
     Parameters
     ----------
@@ -382,24 +354,37 @@ def fit(
         Linear-time engine (default) or the dense reference.
     predictive_draws : int
         Posterior draws used for the posterior predictive group (0: none).
+    built : BuiltModel, optional
+        The model already built from ``data`` and ``spec`` (skips building and
+        the starting-point check).
+    keep_partial : bool
+        On Ctrl-C, finish the draws made so far into a fit marked partial and
+        attach it to the exception (``partial``); otherwise ``partial`` is None.
+
+    Raises
+    ------
+    InputError
+        The log density or its gradient is not finite at the starting point.
+    FitInterrupted
+        Sampling was stopped by Ctrl-C (the partial draws ride on the exception).
     """
+    from cladewise.inference.startcheck import check_starting_point
+
     opts = options or SamplingOptions()
     t0 = time.perf_counter()
-    built = build_model(data, spec, likelihood=likelihood)
+    if built is None:
+        built = build_model(data, spec, likelihood=likelihood)
+        check_starting_point(built)
     t1 = time.perf_counter()
-    idata = sample(built, opts)
+    try:
+        idata = sample(built, opts)
+    except FitInterrupted as exc:
+        part = None
+        if keep_partial and exc.partial is not None:
+            part = finish_fit(built, exc.partial, opts, predictive_draws=predictive_draws)
+            n = part.idata.posterior.sizes["draw"]
+            part.mark_partial(f"sampling was interrupted after {n} of {opts.draws} draws per chain")
+        raise FitInterrupted(str(exc), partial=part) from None
     t2 = time.perf_counter()
     return finish_fit(built, idata, opts, timing={"build": t1 - t0, "sample_and_compile": t2 - t1},
                       predictive_draws=predictive_draws)
-
-
-def load_fit(out_dir: str | Path) -> tuple[az.InferenceData, dict[str, Any]]:
-    """Read a saved fit folder: (InferenceData, summary.json contents)."""
-    out = Path(out_dir)
-    nc, js = out / "posterior.nc", out / "summary.json"
-    if not nc.is_file() or not js.is_file():
-        raise InputError(
-            f"{str(out)!r} is not a cladewise fit folder (expected posterior.nc and summary.json); "
-            "run 'cladewise fit SPEC --out DIR' first"
-        )
-    return az.from_netcdf(nc), json.loads(js.read_text())

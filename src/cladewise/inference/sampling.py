@@ -1,17 +1,22 @@
-"""Sampling a built model and judging the result.
+"""Sampling a built model.
 
-nutpie (numba-compiled NUTS) is the default; PyMC's own NUTS is the fallback. After
-every fit the diagnostics are put in words using the thresholds of Vehtari et al.
-2021 (Bayesian Analysis 16:667-718): R-hat above 1.01, bulk or tail ESS below 400,
-any divergent transition, and E-BFMI below 0.3 (the last is common practice).
+nutpie (numba-compiled NUTS) is the default; PyMC's own NUTS is the fallback. The
+diagnostics live in :mod:`cladewise.inference.diagnostics` (re-exported here).
+
+Both samplers stop on Ctrl-C and quietly hand back the draws made so far; here an
+interrupt is noticed and raised as :class:`~cladewise.errors.FitInterrupted`
+(carrying those partial draws), so a cut-short run is never taken for a full one.
 """
 
 from __future__ import annotations
 
+import contextlib
 import os
+import signal
 import sys
+import threading
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import arviz as az
@@ -20,14 +25,10 @@ import numpy as np
 from cladewise.config.analysis import SAMPLING
 from cladewise.config.tables import read_table
 from cladewise.model.build import BuiltModel
-from cladewise.errors import FitError, InputError
+from cladewise.errors import FitInterrupted, InputError
+from cladewise.inference.diagnostics import BFMI_MIN, ESS_MIN, RHAT_MAX, Diagnostics, diagnose  # noqa: F401
 
-__all__ = ["SamplingOptions", "Diagnostics", "sample", "diagnose", "compile_model"]
-
-RHAT_MAX = 1.01
-ESS_MIN = 400
-BFMI_MIN = 0.3
-
+__all__ = ["SamplingOptions", "Diagnostics", "sample", "diagnose", "compile_model", "complete_draws"]
 
 @dataclass
 class SamplingOptions:
@@ -62,41 +63,6 @@ class SamplingOptions:
         if self.progress is not None:
             return bool(self.progress)
         return sys.stderr.isatty()
-
-
-@dataclass
-class Diagnostics:
-    """Convergence diagnostics of one fit, with the verdict in words."""
-
-    max_rhat: float
-    min_ess_bulk: float
-    min_ess_tail: float
-    divergences: int
-    min_bfmi: float
-    n_draws: int
-    problems: list[str] = field(default_factory=list)
-
-    @property
-    def ok(self) -> bool:
-        return not self.problems
-
-    def to_text(self) -> str:
-        head = (
-            f"R-hat max {self.max_rhat:.3f}, bulk ESS min {self.min_ess_bulk:.0f}, "
-            f"tail ESS min {self.min_ess_tail:.0f}, divergences {self.divergences}, "
-            f"E-BFMI min {self.min_bfmi:.2f} ({self.n_draws} draws)"
-        )
-        if self.ok:
-            return head + "\nDiagnostics: no problems found (thresholds of Vehtari et al. 2021)."
-        return head + "\nDiagnostics found problems:\n" + "\n".join(f"  - {p}" for p in self.problems)
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "max_rhat": self.max_rhat, "min_ess_bulk": self.min_ess_bulk,
-            "min_ess_tail": self.min_ess_tail, "divergences": self.divergences,
-            "min_bfmi": self.min_bfmi, "n_draws": self.n_draws, "ok": self.ok,
-            "problems": list(self.problems),
-        }
 
 
 def compile_model(built: BuiltModel, sampler: str = "nutpie") -> Any:
@@ -146,64 +112,81 @@ def sample(
             # the graph may not read every tree array (Brownian motion ignores heights)
             known = getattr(compiled, "shared_data", tree_values)
             compiled = compiled.with_data(**{k: v for k, v in tree_values.items() if k in known})
-        idata = nutpie.sample(
-            compiled, draws=opts.draws, tune=opts.tune, chains=opts.chains,
-            seed=opts.seed, progress_bar=progress, target_accept=opts.target_accept,
-            cores=min(opts.chains, os.cpu_count() or 1),
-        )
+        with _interrupts() as stopped:
+            idata = _run(lambda: nutpie.sample(
+                compiled, draws=opts.draws, tune=opts.tune, chains=opts.chains,
+                seed=opts.seed, progress_bar=progress, target_accept=opts.target_accept,
+                cores=min(opts.chains, os.cpu_count() or 1),
+            ))
     else:
         import pymc as pm
 
         with built.model:
             if tree_values:
                 pm.set_data({k: v for k, v in tree_values.items() if k in built.model.named_vars})
-            idata = pm.sample(
-                draws=opts.draws, tune=opts.tune, chains=opts.chains,
-                cores=min(opts.chains, os.cpu_count() or 1), random_seed=opts.seed,
-                progressbar=progress, target_accept=opts.target_accept,
-                compute_convergence_checks=False,
-            )
+            with _interrupts() as stopped:
+                idata = _run(lambda: pm.sample(
+                    draws=opts.draws, tune=opts.tune, chains=opts.chains,
+                    cores=min(opts.chains, os.cpu_count() or 1), random_seed=opts.seed,
+                    progressbar=progress, target_accept=opts.target_accept,
+                    compute_convergence_checks=False,
+                ))
+    if stopped:
+        raise FitInterrupted(partial=complete_draws(idata))
     return idata
 
 
-def diagnose(idata: az.InferenceData, var_names: list[str]) -> Diagnostics:
-    """Compute R-hat, ESS, divergences and E-BFMI and describe any problem."""
-    post = idata.posterior
-    names = [v for v in var_names if v in post]
-    # correlation matrices have a constant diagonal: R-hat/ESS are NaN there, skip them
-    summ = az.summary(idata, var_names=names, kind="diagnostics") if names else None
-    if summ is not None:
-        rhat = summ["r_hat"].to_numpy(dtype=float)
-        eb = summ["ess_bulk"].to_numpy(dtype=float)
-        et = summ["ess_tail"].to_numpy(dtype=float)
-        finite = np.isfinite(rhat)
-        max_rhat = float(np.max(rhat[finite])) if finite.any() else float("nan")
-        min_eb = float(np.min(eb[np.isfinite(eb)])) if np.isfinite(eb).any() else float("nan")
-        min_et = float(np.min(et[np.isfinite(et)])) if np.isfinite(et).any() else float("nan")
-    else:
-        max_rhat = min_eb = min_et = float("nan")
-    stats = idata.sample_stats
-    div = int(np.asarray(stats["diverging"]).sum()) if "diverging" in stats else 0
+def _run(call: Any) -> Any:
     try:
-        bfmi = float(np.min(az.bfmi(idata)))
-    except Exception:  # pragma: no cover - energy missing
-        bfmi = float("nan")
-    n_draws = int(post.sizes["chain"] * post.sizes["draw"])
-    problems = []
-    n_chains = int(post.sizes["chain"])
-    if n_chains > 1 and max_rhat > RHAT_MAX:
-        problems.append(f"R-hat {max_rhat:.3f} > {RHAT_MAX}: chains disagree; run longer or check the model")
-    if min_eb < ESS_MIN:
-        problems.append(f"bulk ESS {min_eb:.0f} < {ESS_MIN}: too few effective draws for stable means; draw more")
-    if min_et < ESS_MIN:
-        problems.append(f"tail ESS {min_et:.0f} < {ESS_MIN}: interval ends are unstable; draw more")
-    if div:
-        problems.append(f"{div} divergent transitions: the posterior may be biased; raise target_accept or reparametrise")
-    if np.isfinite(bfmi) and bfmi < BFMI_MIN:
-        problems.append(f"E-BFMI {bfmi:.2f} < {BFMI_MIN}: the sampler explores energy poorly (common practice threshold)")
-    if n_chains == 1:
-        problems.append("only one chain: R-hat cannot check convergence; use 4 chains for results you report")
-    return Diagnostics(max_rhat, min_eb, min_et, div, bfmi, n_draws, problems)
+        return call()
+    except KeyboardInterrupt as exc:
+        if isinstance(exc, FitInterrupted):
+            raise
+        raise FitInterrupted() from None
+
+
+@contextlib.contextmanager
+def _interrupts():
+    """Note a Ctrl-C while sampling (both samplers catch it and return partial draws).
+
+    Yields a list that is non-empty after an interrupt. Signal handlers can only be
+    set in the main thread; elsewhere (a dask worker) no Ctrl-C can arrive anyway.
+    """
+    stopped: list[bool] = []
+    if threading.current_thread() is not threading.main_thread():
+        yield stopped
+        return
+
+    def handler(signum: int, frame: Any) -> None:
+        stopped.append(True)
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGINT, handler)
+    try:
+        yield stopped
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def complete_draws(idata: Any) -> Any:
+    """The draws every chain finished before an interrupt (``None`` when there are none).
+
+    Chains stop at different points; draws beyond the shortest chain, and draws
+    holding NaN (not made yet), are dropped so every chain has the same length.
+    """
+    if idata is None or "posterior" not in idata.groups():
+        return None
+    post = idata.posterior
+    if not post.data_vars or post.sizes.get("draw", 0) == 0:
+        return None
+    done = np.ones((post.sizes["chain"], post.sizes["draw"]), dtype=bool)
+    for da in post.data_vars.values():
+        vals = np.asarray(da.transpose("chain", "draw", ...).values, dtype=float)
+        done &= np.isfinite(vals.reshape(vals.shape[0], vals.shape[1], -1)).all(axis=2)
+    n = int(np.min(np.cumprod(done, axis=1).sum(axis=1)))
+    if n < 1:
+        return None
+    return idata.isel(draw=slice(0, n), groups=["posterior", "sample_stats"])
 
 
 def timed(fn, *args, **kwargs):

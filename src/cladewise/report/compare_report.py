@@ -10,7 +10,7 @@ import pandas as pd
 
 from cladewise.errors import InputError
 from cladewise.evaluation.loo import DIFF_SE_FACTOR, K_THRESHOLD
-from cladewise.report.fit_report import _atomic_write
+from cladewise.inference.results import atomic_write
 from cladewise.report.html import MARKER, esc, figure_html, page, table_html
 from cladewise.report.progress import Progress
 from cladewise.report.style import LINESTYLES, MARKERS, OKABE_ITO, new_figure, save_figure
@@ -210,7 +210,7 @@ def write_comparison_report(
          "estimate of a model; refit without them to see how much the comparison depends on them.</p>"
          + "".join(inf_parts)),
     ]
-    _atomic_write(target, page(title, f"{len(table)} models", sections))
+    atomic_write(target, page(title, f"{len(table)} models", sections))
     prog.done(f"wrote {target}")
     return target
 

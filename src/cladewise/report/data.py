@@ -1,12 +1,13 @@
 """Everything the report needs from a saved fit folder, read once.
 
-Missing pieces (an older summary.json, a fit without log-likelihood) are recorded
+Only the fit folder is read: standard errors, predictors, the tree and the
+observed values are stored in ``posterior.nc`` by the fit, so the report does not
+depend on the data files still being where they were. Missing pieces (an older summary.json, a fit without log-likelihood) are recorded
 as ``None`` so each section can say what it could not show instead of failing.
 """
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -15,7 +16,7 @@ import arviz as az
 import numpy as np
 import pandas as pd
 
-from cladewise.errors import InputError
+from cladewise.inference.results import load_fit
 from cladewise.data.trees import FlatTree
 
 __all__ = ["FitView", "read_fit_folder"]
@@ -57,24 +58,7 @@ def _species_from(idata: az.InferenceData, info: dict[str, Any]) -> list[str]:
 def read_fit_folder(folder: str | Path) -> FitView:
     """Read posterior.nc, summary.json and summary.csv of a fit folder."""
     out = Path(folder)
-    nc, js = out / "posterior.nc", out / "summary.json"
-    if not out.is_dir() or not nc.is_file() or not js.is_file():
-        raise InputError(
-            f"{str(out)!r} is not a cladewise fit folder (expected posterior.nc and summary.json "
-            "inside); run 'cladewise fit SPEC --out DIR' first and pass that DIR"
-        )
-    try:
-        info = json.loads(js.read_text(encoding="utf-8"))
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{str(js)!r} could not be read as JSON ({exc}); refit to recreate it") from None
-    if not isinstance(info, dict):
-        raise InputError(f"{str(js)!r} does not hold a JSON object; refit to recreate it")
-    try:
-        idata = az.from_netcdf(nc)
-    except Exception as exc:  # netCDF errors come in many types
-        raise InputError(f"{str(nc)!r} could not be read ({exc}); refit to recreate it") from None
-    if "posterior" not in idata.groups():
-        raise InputError(f"{str(nc)!r} has no posterior group; refit to recreate it")
+    idata, info = load_fit(out)
 
     csv = out / "summary.csv"
     if info.get("quantities"):
@@ -126,42 +110,4 @@ def read_fit_folder(folder: str | Path) -> FitView:
         d = cd["design"]
         cols = [str(c) for c in d[d.dims[1]].values] if len(d.dims) > 1 and d.dims[1] in d.coords else predictors
         design = pd.DataFrame(np.asarray(d.values, dtype=float), index=species, columns=cols)
-    view = FitView(out, idata, info, table, kind, traits, species, y, se, tree, predictors, design, notes)
-    if (se is None or (kind == "regression" and design is None)) and info.get("spec_path"):
-        _fill_from_spec(view)
-    return view
-
-
-def _fill_from_spec(view: FitView) -> None:
-    """Read standard errors (and predictor columns) from the spec's data files.
-
-    The fit folder does not store them; the files named in the spec are read again
-    and used only if they still hold every species of the fit.
-    """
-    path = Path(str(view.info.get("spec_path")))
-    if not path.is_file():
-        return
-    try:
-        from cladewise.model.build import ModelData
-        from cladewise.config.analysis import load_data, load_spec
-
-        match, _ = load_data(load_spec(path))
-        data = ModelData.from_match(match)
-    except Exception as exc:  # the files may have moved or changed since the fit
-        view.notes.append(f"the data files of the spec could not be read again ({exc}); "
-                          "figures are drawn without standard errors")
-        return
-    if set(view.species) - set(data.species):
-        view.notes.append("the data files of the spec no longer hold every species of the fit; "
-                          "they were not used")
-        return
-    if view.se is None and data.se is not None:
-        cols = [t for t in view.traits if t in data.se.columns]
-        if len(cols) == len(view.traits):
-            view.se = data.se.loc[view.species, cols].to_numpy(dtype=float)
-            view.notes.append("standard errors were read again from the data files named in the spec")
-    if view.kind == "regression" and view.design is None:
-        cols = [p for p in view.predictors if p in data.values.columns]
-        if cols:
-            view.design = data.values.loc[view.species, cols].astype(float)
-            view.notes.append("predictor values were read again from the data files named in the spec")
+    return FitView(out, idata, info, table, kind, traits, species, y, se, tree, predictors, design, notes)

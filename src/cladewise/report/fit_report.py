@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import os
-import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -13,6 +11,7 @@ import numpy as np
 import pandas as pd
 
 from cladewise.errors import InputError
+from cladewise.inference.results import atomic_write, is_cladewise_output
 from cladewise.model.describe import evolution_description, measurement_error_description
 from cladewise.model.quantities import plain_words, quantity as catalogue_entry
 from cladewise.report import figures as F
@@ -61,9 +60,14 @@ def write_fit_report(out_dir: str | Path) -> Path:
 
 # --------------------------------------------------------------------------- safety
 def _guard_outputs(out: Path) -> None:
-    """Refuse to replace files that cladewise did not write."""
+    """Refuse to replace files that cladewise did not write.
+
+    A fit folder carrying the cladewise marker is cladewise's own; an older fit folder
+    (written before the marker existed) is written into only when its report.html,
+    if any, carries the page marker of a cladewise report.
+    """
     target = out / REPORT_NAME
-    if target.exists():
+    if target.exists() and not is_cladewise_output(out):
         try:
             head = target.read_text(encoding="utf-8", errors="replace")[:400]
         except OSError:
@@ -77,17 +81,6 @@ def _guard_outputs(out: Path) -> None:
         if (out / sub).exists() and not (out / sub).is_dir():
             raise InputError(f"{str(out / sub)!r} is a file, but the report needs a folder of that name; "
                              "move the file away")
-
-
-def _atomic_write(path: Path, text: str) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
 
 
 # --------------------------------------------------------------------------- words
@@ -448,7 +441,7 @@ def build_fit_report(out_dir: str | Path, progress: Progress | None = None) -> R
     title = "cladewise fit report"
     folder_name = out.resolve().name
     subtitle = f"Fit folder: {folder_name}. " + (view.info.get("description") or "")
-    _atomic_write(res.path, page(title, subtitle, sections))
+    atomic_write(res.path, page(title, subtitle, sections))
     res.timings["page"] = time.perf_counter() - t0
     res.timings["total"] = time.perf_counter() - t_start
     prog.done(f"wrote {res.path}")

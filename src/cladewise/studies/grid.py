@@ -2,12 +2,13 @@
 
 The grid file format and its reader are in :mod:`cladewise.config.grid`.
 
-A fit without ``trees`` and ``n_trees`` is a single-tree fit (what ``cladewise fit``
-does); with either it pools over the tree sample
-(:func:`cladewise.inference.treesample.fit_spec_tree_sample`).
+Every fit runs through :func:`cladewise.pipeline.fit_from_spec`, as ``cladewise
+fit`` does: a fit without ``trees`` and ``n_trees`` is a single-tree fit, with either
+it pools over the tree sample.
 
-Each fit writes its own folder ``OUT/<name>`` atomically (staged in a hidden
-``.<name>.partial-*`` sibling, then renamed). A grid that is stopped and started
+Each fit writes its own folder ``OUT/<name>`` atomically
+(:func:`cladewise.inference.results.atomic_write`: staged in a hidden
+``.<name>.partial-*`` sibling, then swapped in). A grid that is stopped and started
 again resumes: folders with a valid ``summary.json`` and ``posterior.nc`` are
 skipped (never rewritten; delete one to refit it), leftover partial folders are
 deleted and their fits redone. One grid run per output folder at a time (a lock
@@ -34,6 +35,7 @@ import pandas as pd
 
 from cladewise.config.grid import GridJob, load_grid
 from cladewise.errors import InputError
+from cladewise.inference.results import atomic_write, check_output_folder, is_cladewise_output, write_marker
 
 __all__ = ["is_finished", "run_job", "run_grid", "format_status", "LOCK_NAME", "STATUS_NAME"]
 
@@ -65,17 +67,11 @@ def run_job(job: dict[str, Any], out_dir: str) -> dict[str, Any]:
                            "n_trees": None, "max_rhat": float("nan"), "diagnostics_ok": None, "message": ""}
     command = f"cladewise grid (fit {j.name})"
     try:
-        if j.pooled:
-            from cladewise.inference.treesample import fit_spec_tree_sample
+        from cladewise.pipeline import fit_from_spec
 
-            res = fit_spec_tree_sample(j.spec, target, trees=j.trees, n_trees=j.n_trees, overwrite=True,
-                                       command=command, progress=False, **j.sampling)
-            row["n_trees"] = len(res.tree_indices)
-        else:
-            from cladewise.pipeline import fit_spec
-
-            res = fit_spec(j.spec, target, overwrite=True, command=command, **{**j.sampling, "progress": False})
-            row["n_trees"] = 1
+        res = fit_from_spec(j.spec, out=target, overwrite=True, trees=j.trees, n_trees=j.n_trees,
+                            progress=False, command=command, **j.sampling)
+        row["n_trees"] = len(getattr(res, "tree_indices", None) or [0])
         row.update(status="done", max_rhat=res.diagnostics.max_rhat, diagnostics_ok=res.diagnostics.ok,
                    message="; ".join(res.diagnostics.problems)[:300])
     except Exception as exc:  # one failed fit must not stop the grid
@@ -118,16 +114,12 @@ def _take_lock(out: Path) -> Path:
                 f"another grid run (process {pid}) is writing to {out}; wait for it to end, or use "
                 f"another --out folder (delete {lock} if that process is not cladewise)"
             )
-    tmp = out / f".grid.lock.{uuid.uuid4().hex}"
-    tmp.write_text(json.dumps({"pid": os.getpid(), "host": host}))
-    os.replace(tmp, lock)
+    atomic_write(lock, json.dumps({"pid": os.getpid(), "host": host}))
     return lock
 
 
 def _write_status(out: Path, table: pd.DataFrame) -> None:
-    tmp = out / f".{STATUS_NAME}.{uuid.uuid4().hex}"
-    table.to_csv(tmp, index=False)
-    os.replace(tmp, out / STATUS_NAME)
+    atomic_write(out / STATUS_NAME, table.to_csv(index=False))
 
 
 def run_grid(
@@ -163,10 +155,12 @@ def run_grid(
     if not isinstance(n_workers, int) or n_workers < 1:
         raise InputError(f"--workers must be a positive whole number, not {n_workers!r}")
     jobs = load_grid(grid_path)
-    out = Path(out_dir).resolve()
-    if out.exists() and not out.is_dir():
-        raise InputError(f"--out {out} is a file; give a folder")
-    out.mkdir(parents=True, exist_ok=True)
+    inputs = [grid_path] + [p for j in jobs for p in (j.spec, j.trees) if p]
+    out = check_output_folder(out_dir, inputs=inputs, what="grid", add_to=True)
+    if not out.exists():
+        out.mkdir(parents=True)
+    if not is_cladewise_output(out):
+        write_marker(out, "grid")
     lock = _take_lock(out)
     try:
         gone = _clean_partials(out)

@@ -45,6 +45,7 @@ from scipy import stats
 from cladewise.data.trees import FlatTree
 from cladewise.errors import InputError
 from cladewise.inference.fit import json_default
+from cladewise.inference.results import atomic_write
 from cladewise.studies.refit import (
     Progress,
     check_study_tree,
@@ -214,13 +215,17 @@ class PowerResult:
         figure is drawn by :func:`cladewise.report.study_figures.save_power_figure`.
         """
         out = output_folder(out_dir, overwrite)
-        paths = {"table": out / "power_table.csv", "fits": out / "power_fits.csv", "json": out / "power.json"}
-        self.table.to_csv(paths["table"], index=False)
-        self.fits.to_csv(paths["fits"], index=False)
-        doc = {"settings": self.settings, "table": self.table.to_dict(orient="records"),
-               "note": "Data simulated by cladewise for a power study; not observations."}
-        paths["json"].write_text(json.dumps(doc, indent=2, default=json_default) + "\n")
-        return paths
+        names = {"table": "power_table.csv", "fits": "power_fits.csv", "json": "power.json"}
+
+        def write(folder: Path) -> None:
+            self.table.to_csv(folder / names["table"], index=False)
+            self.fits.to_csv(folder / names["fits"], index=False)
+            doc = {"settings": self.settings, "table": self.table.to_dict(orient="records"),
+                   "note": "Data simulated by cladewise for a power study; not observations."}
+            (folder / names["json"]).write_text(json.dumps(doc, indent=2, default=json_default) + "\n")
+
+        atomic_write(out, write, what="power")
+        return {k: out / v for k, v in names.items()}
 
 
 def run_power_study(

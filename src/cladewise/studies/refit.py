@@ -111,7 +111,7 @@ def make_refit_study(
 def simulate_datasets(tree: FlatTree, R: np.ndarray, mu: np.ndarray, se: np.ndarray | None,
                       gen: np.random.Generator, n: int) -> np.ndarray:
     """``n`` data sets (n x species x traits) by BM with rate matrix ``R`` plus measurement error."""
-    from cladewise.studies.simulate import simulate_traits
+    from cladewise.model.simulate import simulate_traits
 
     return simulate_traits(tree, R, mu, se=se, rng=gen, n_reps=n)
 
@@ -128,15 +128,9 @@ def fit_problems(idata: Any) -> tuple[int, float]:
     return div, rhat
 
 
-def output_folder(out_dir: str | Path, overwrite: bool) -> Path:
-    """Create ``out_dir``; refuse a non-empty folder unless ``overwrite`` (never lose results)."""
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise InputError(f"{out} exists and is not a folder; choose another --out")
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise InputError(
-            f"output folder {out} is not empty; choose a new folder or pass --overwrite "
-            "(overwrite=True) to replace its files"
-        )
-    out.mkdir(parents=True, exist_ok=True)
-    return out
+def output_folder(out_dir: str | Path, overwrite: bool, what: str = "power study") -> Path:
+    """Check a study's output folder before any work (see
+    :func:`cladewise.inference.results.check_output_folder`)."""
+    from cladewise.inference.results import check_output_folder
+
+    return check_output_folder(out_dir, overwrite=overwrite, what=what)

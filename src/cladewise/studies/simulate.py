@@ -31,9 +31,18 @@ import pandas as pd
 
 from cladewise.config.simulation import load_simulation_spec
 from cladewise.errors import InputError
+from cladewise.inference.results import atomic_write, check_output_folder, write_marker
 from cladewise.model.evolution import check_model_name, model_warnings, transformed_lengths
 from cladewise.data.trees import FlatTree
 from cladewise.data.treefiles import format_newick
+from cladewise.model.simulate import (
+    as_rng,
+    branch_lengths,
+    matrix_root,
+    per_species,
+    simulate_traits,
+    square_matrix,
+)
 
 __all__ = [
     "SimulatedData",
@@ -43,160 +52,6 @@ __all__ = [
     "add_simulate_arguments",
     "run_simulate",
 ]
-
-RngLike = np.random.Generator | int | None
-
-
-# ----------------------------------------------------------------- validation
-def _as_rng(rng: RngLike) -> np.random.Generator:
-    if isinstance(rng, np.random.Generator):
-        return rng
-    return np.random.default_rng(rng)
-
-
-def _square(M: Any, k: int | None, name: str) -> np.ndarray:
-    """A symmetric k x k matrix from a scalar (k = 1), a vector (diagonal) or a matrix."""
-    A = np.asarray(M, dtype=float)
-    if A.ndim == 0:
-        A = A.reshape(1, 1) if k in (None, 1) else np.eye(k) * float(A)
-    elif A.ndim == 1:
-        A = np.diag(A)
-    if A.ndim != 2 or A.shape[0] != A.shape[1]:
-        raise InputError(f"{name} must be a square matrix; got shape {A.shape}.")
-    if k is not None and A.shape[0] != k:
-        raise InputError(f"{name} must be {k} x {k} (one row per trait); got {A.shape}.")
-    if not np.all(np.isfinite(A)):
-        raise InputError(f"{name} contains NaN or infinite values.")
-    if not np.allclose(A, A.T, rtol=1e-10, atol=1e-12):
-        raise InputError(f"{name} must be symmetric.")
-    return 0.5 * (A + A.T)
-
-
-def _matrix_root(A: np.ndarray, name: str) -> np.ndarray:
-    """L with L L' = A; accepts positive semi-definite matrices (e.g. a zero E)."""
-    try:
-        return np.linalg.cholesky(A)
-    except np.linalg.LinAlgError:
-        pass
-    w, V = np.linalg.eigh(A)
-    scale = max(float(np.abs(w).max()), 1e-300)
-    if w.min() < -1e-10 * scale:
-        raise InputError(
-            f"{name} is not positive semi-definite (smallest eigenvalue {w.min():.3g}); "
-            "check the variances and correlations (|correlation| <= 1 and jointly "
-            "consistent)."
-        )
-    return V * np.sqrt(np.clip(w, 0.0, None))
-
-
-def _branch_lengths(tree: FlatTree, lengths: Any) -> np.ndarray:
-    ln = tree.length if lengths is None else np.asarray(lengths, dtype=float)
-    if ln.shape != (tree.n_nodes,):
-        raise InputError(
-            f"lengths must have one entry per node ({tree.n_nodes}); got shape {ln.shape}."
-        )
-    if not np.all(np.isfinite(ln)) or np.any(ln < 0):
-        raise InputError("branch lengths must be finite and >= 0 to simulate on them.")
-    return ln
-
-
-def _depth_levels(tree: FlatTree) -> list[np.ndarray]:
-    """Non-root nodes grouped by depth (number of edges from the root), top first."""
-    depth = np.zeros(tree.n_nodes, dtype=np.int64)
-    par = tree.parent
-    for i in range(tree.n_nodes - 2, -1, -1):
-        depth[i] = depth[par[i]] + 1
-    order = np.argsort(depth[:-1], kind="stable")
-    bounds = np.cumsum(np.bincount(depth[:-1])[1:])
-    return [g for g in np.split(order, bounds[:-1]) if g.size]
-
-
-def _per_species(v: Any, n: int, k: int, name: str) -> np.ndarray:
-    """Broadcast a scalar, per-trait vector or (n, k) array to (n, k)."""
-    a = np.asarray(v, dtype=float)
-    try:
-        a = np.broadcast_to(a, (n, k)).copy()
-    except ValueError:
-        raise InputError(
-            f"{name} must be a number, one value per trait ({k}) or an array of shape "
-            f"({n}, {k}); got shape {a.shape}."
-        ) from None
-    if not np.all(np.isfinite(a)) or np.any(a < 0):
-        raise InputError(f"{name} must be finite and >= 0.")
-    return a
-
-
-# ----------------------------------------------------------------- simulation
-def simulate_traits(
-    tree: FlatTree,
-    R: Any,
-    mu: Any,
-    *,
-    lengths: Any = None,
-    E: Any = None,
-    se: Any = None,
-    rng: RngLike = None,
-    n_reps: int | None = None,
-) -> np.ndarray:
-    """Exact Gaussian draws of species values on a tree.
-
-    Parameters
-    ----------
-    tree : FlatTree
-    R : array_like, (k, k)
-        Brownian rate matrix (a scalar for one trait, a vector for a diagonal R).
-    mu : array_like, (k,)
-        Root value.
-    lengths : array_like, (n_nodes,), optional
-        Branch lengths to use instead of ``tree.length`` (e.g. after a model
-        transform). ``lengths[root]`` is the root edge.
-    E : array_like, (k, k), optional
-        Species-level covariance added independently to every species.
-    se : array_like, optional
-        Measurement standard errors: scalar, per trait ``(k,)`` or ``(n_tips, k)``.
-    rng : numpy Generator or int seed, optional
-    n_reps : int, optional
-        Number of independent replicates.
-
-    Returns
-    -------
-    ndarray
-        ``(n_tips, k)``, or ``(n_reps, n_tips, k)`` when ``n_reps`` is given; rows in
-        the order of ``tree.tip_names``. Covariance of the flattened rows is
-        ``kron(C, R) + kron(I, E) + diag(se^2)``.
-    """
-    R = _square(R, None, "R")
-    k = R.shape[0]
-    try:
-        mu_v = np.broadcast_to(np.asarray(mu, dtype=float), (k,))
-    except ValueError:
-        mu_v = None
-    if mu_v is None or not np.all(np.isfinite(mu_v)):
-        raise InputError(f"mu must be one finite value per trait ({k}); got {mu!r}.")
-    ln = _branch_lengths(tree, lengths)
-    gen = _as_rng(rng)
-    reps = 1 if n_reps is None else int(n_reps)
-    if reps < 1:
-        raise InputError("n_reps must be at least 1.")
-    L = _matrix_root(R, "R")
-    n, m = tree.n_tips, tree.n_nodes
-
-    # Increments on every branch at once; the pre-order pass only adds them up.
-    incr = gen.standard_normal((reps, m, k)) @ L.T
-    incr *= np.sqrt(ln)[None, :, None]
-    x = np.empty((reps, m, k))
-    x[:, -1] = mu_v + incr[:, -1]
-    par = tree.parent
-    for nodes in _depth_levels(tree):
-        x[:, nodes] = x[:, par[nodes]] + incr[:, nodes]
-    out = x[:, :n]
-    if E is not None:
-        LE = _matrix_root(_square(E, k, "E"), "E")
-        out = out + gen.standard_normal((reps, n, k)) @ LE.T
-    if se is not None:
-        s = _per_species(se, n, k, "se")
-        out = out + gen.standard_normal((reps, n, k)) * s
-    return out[0] if n_reps is None else out
 
 
 def _sample_sizes(n_specimens: Any, n: int, gen: np.random.Generator) -> np.ndarray:
@@ -342,7 +197,7 @@ def simulate_dataset(
     traits = [str(t) for t in traits]
     if len(set(traits)) != len(traits) or any(t == "species" for t in traits):
         raise InputError("trait names must be unique and must not be 'species'.")
-    R = _square(R, len(traits), "R")
+    R = square_matrix(R, len(traits), "R")
     k, n = len(traits), tree.n_tips
     model = check_model_name(model)
     params = dict(model_params or {})
@@ -350,8 +205,8 @@ def simulate_dataset(
         if lengths is not None:
             raise InputError("give either lengths or a model transform, not both.")
         lengths = _transform(tree, model, params)
-    ln = _branch_lengths(tree, lengths)
-    gen = _as_rng(seed)
+    ln = branch_lengths(tree, lengths)
+    gen = as_rng(seed)
 
     values = simulate_traits(tree, R, mu, lengths=ln, E=E, rng=gen)
     species = list(tree.tip_names)
@@ -359,7 +214,7 @@ def simulate_dataset(
         "traits": traits,
         "rate_matrix": R,
         "root_means": np.broadcast_to(np.asarray(mu, dtype=float), (k,)).copy(),
-        "species_covariance": None if E is None else _square(E, k, "E"),
+        "species_covariance": None if E is None else square_matrix(E, k, "E"),
         "within_variance": None,
         "model": model,
         "model_parameters": params,
@@ -376,10 +231,10 @@ def simulate_dataset(
             raise InputError("give either n_specimens (se from specimens) or se, not both.")
         if within_var is None:
             raise InputError("within_var (variance among specimens) is needed with n_specimens.")
-        W = _square(within_var, k, "within_var")
+        W = square_matrix(within_var, k, "within_var")
         sizes = _sample_sizes(n_specimens, n, gen)
         rows = np.repeat(np.arange(n), sizes)
-        spec = values[rows] + gen.standard_normal((rows.size, k)) @ _matrix_root(W, "within_var").T
+        spec = values[rows] + gen.standard_normal((rows.size, k)) @ matrix_root(W, "within_var").T
         spec[cell_blank[rows]] = np.nan
         spec[_blank(spec.shape, missing_specimen_share, gen, "missing_specimen_share")] = np.nan
         specimens = pd.DataFrame(spec, columns=traits)
@@ -394,7 +249,7 @@ def simulate_dataset(
     table = pd.DataFrame({"species": species})
     obs = values.copy()
     if se is not None:
-        s = _per_species(se, n, k, "se")
+        s = per_species(se, n, k, "se")
         obs = obs + gen.standard_normal((n, k)) * s
         s[cell_blank] = np.nan
         truth["standard_errors"] = s
@@ -429,15 +284,19 @@ def _jsonable(obj: Any) -> Any:
     return obj
 
 
-def write_dataset(sim: SimulatedData, out_dir: str | Path, *, overwrite: bool = False) -> dict[str, Path]:
-    """Write a simulated data set to a folder.
+def write_dataset(sim: SimulatedData, out_dir: str | Path, *, overwrite: bool = False,
+                  inputs: Sequence[str | Path] = ()) -> dict[str, Path]:
+    """Write a simulated data set to a folder, all at once.
 
     Parameters
     ----------
     sim : SimulatedData
     out_dir : path
-        Created if needed. An existing non-empty folder is refused unless
-        ``overwrite=True`` (files of the same name are then replaced).
+        Created if needed. An existing folder is replaced only with
+        ``overwrite=True`` and only when cladewise wrote it
+        (:func:`cladewise.inference.results.check_output_folder`).
+    inputs : paths
+        Input files (the spec, the tree); a folder holding them is refused.
 
     Returns
     -------
@@ -445,30 +304,27 @@ def write_dataset(sim: SimulatedData, out_dir: str | Path, *, overwrite: bool = 
         ``species``, ``true_means``, ``truth``, ``tree`` and, with specimens,
         ``specimens``.
     """
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise InputError(f"{out} exists and is not a folder; choose another --out.")
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise InputError(
-            f"output folder {out} is not empty; choose a new folder or pass overwrite "
-            "(--overwrite on the command line) to replace its files."
-        )
-    out.mkdir(parents=True, exist_ok=True)
-    paths = {"species": out / "species.csv", "true_means": out / "true_means.csv",
-             "truth": out / "truth.json"}
-    sim.species.to_csv(paths["species"], index=False)
+    out = check_output_folder(out_dir, overwrite=overwrite, inputs=inputs, what="data set")
+    names = {"species": "species.csv", "true_means": "true_means.csv", "truth": "truth.json"}
     if sim.specimens is not None:
-        paths["specimens"] = out / "specimens.csv"
-        sim.specimens.to_csv(paths["specimens"], index=False)
-    truth = dict(sim.truth)
-    truth.pop("true_means").to_csv(paths["true_means"])
-    truth["note"] = "Invented data simulated by cladewise; not observations."
-    paths["truth"].write_text(json.dumps(_jsonable(truth), indent=2) + "\n")
+        names["specimens"] = "specimens.csv"
     if sim.tree is not None:
-        paths["tree"] = out / "tree.nwk"
+        names["tree"] = "tree.nwk"
+    atomic_write(out, lambda folder: _write_dataset_files(sim, folder), what="simulate")
+    return {k: Path(out_dir) / v for k, v in names.items()}
+
+
+def _write_dataset_files(sim: SimulatedData, folder: Path) -> None:
+    sim.species.to_csv(folder / "species.csv", index=False)
+    if sim.specimens is not None:
+        sim.specimens.to_csv(folder / "specimens.csv", index=False)
+    truth = dict(sim.truth)
+    truth.pop("true_means").to_csv(folder / "true_means.csv")
+    truth["note"] = "Invented data simulated by cladewise; not observations."
+    (folder / "truth.json").write_text(json.dumps(_jsonable(truth), indent=2) + "\n")
+    if sim.tree is not None:
         # 17 significant digits: lengths round-trip exactly.
-        paths["tree"].write_text(format_newick(sim.tree, digits=17) + "\n")
-    return paths
+        (folder / "tree.nwk").write_text(format_newick(sim.tree, digits=17) + "\n")
 
 
 # -------------------------------------------------------------- command line
@@ -487,10 +343,10 @@ def run_simulate(args: argparse.Namespace) -> int:
     kwargs, tree, reps, seed = spec.settings, spec.tree, spec.replicates, spec.seed
     overwrite = bool(getattr(args, "overwrite", False))
     out = Path(args.out)
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise InputError(
-            f"output folder {out} is not empty; choose a new folder or pass --overwrite."
-        )
+    check_output_folder(out, overwrite=overwrite, inputs=[args.spec], what="data set", add_to=reps > 1)
+    if reps > 1:
+        out.mkdir(parents=True, exist_ok=True)
+        write_marker(out, "simulate")
     # One generator across replicates so they are independent yet reproducible.
     gen = np.random.default_rng(seed)
     for msg in model_warnings(tree, kwargs["model"]):
@@ -500,7 +356,7 @@ def run_simulate(args: argparse.Namespace) -> int:
         sim.truth["seed"] = seed
         sim.truth["replicate"] = r + 1
         target = out if reps == 1 else out / f"replicate_{r + 1:04d}"
-        write_dataset(sim, target, overwrite=overwrite)
+        write_dataset(sim, target, overwrite=overwrite, inputs=[args.spec])
     where = out if reps == 1 else f"{out} ({reps} replicate folders)"
     print(f"simulated {tree.n_tips} species x {len(kwargs['traits'])} traits -> {where}")
     return 0
