@@ -108,3 +108,64 @@ def fit_spec(
     if out_dir is not None:
         result.save(out_dir, overwrite=overwrite)
     return result
+
+
+# =============================================================================
+# shim until flow lands: `fit_from_spec` and `check_spec` over today's code, so
+# the command line can be written against the one pipeline path. The lead
+# replaces this block with flow's versions when merging.
+# =============================================================================
+@dataclass
+class CheckReport:
+    """What ``check`` found: the data summary and the problems that would stop a fit."""
+
+    summary: Any
+    problems: list[str]
+
+    @property
+    def ok(self) -> bool:
+        return not self.problems
+
+
+def check_spec(spec_path: str | Path) -> CheckReport:
+    """Run the validations of a fit up to sampling (shim until flow lands)."""
+    from cladewise.errors import FitError
+    from cladewise.model.build import build_model
+
+    spec = load_spec(spec_path)
+    _, summary = load_data(spec)
+    problems: list[str] = []
+    try:
+        if spec.model:
+            prep = prepare_analysis(spec_path)
+            build_model(prep.model_data, prep.model_spec)
+        else:
+            SamplingOptions.from_dict(dict(spec.sampling))
+    except (InputError, FitError) as exc:
+        problems.append(str(exc))
+    return CheckReport(summary, problems)
+
+
+def fit_from_spec(
+    spec_path: str | Path,
+    *,
+    out: str | Path | None = None,
+    overwrite: bool = False,
+    trees: str | Path | None = None,
+    n_trees: int | None = None,
+    tree_seed: int | None = None,
+    keep_partial: bool = False,
+    progress: bool = True,
+    command: str | None = None,
+    **sampling_overrides: Any,
+) -> FitResult:
+    """Fit a spec on its tree or over a tree sample (shim until flow lands).
+
+    ``tree_seed`` and ``keep_partial`` are accepted but not acted on here.
+    """
+    if trees is not None or n_trees is not None:
+        from cladewise.inference.treesample import fit_spec_tree_sample
+
+        return fit_spec_tree_sample(spec_path, out, trees=trees, n_trees=n_trees, overwrite=overwrite,
+                                    command=command, progress=progress, **sampling_overrides)
+    return fit_spec(spec_path, out, overwrite=overwrite, command=command, progress=progress, **sampling_overrides)

@@ -45,17 +45,16 @@ the spec text and the table), ``power.png`` and ``power.svg`` (the figure).
 from __future__ import annotations
 
 import argparse
-import shlex
 import sys
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from cladewise.cli.main import Command, register_command
+from cladewise.cli.common import Command, command_line
 from cladewise.errors import InputError
 
-__all__ = ["PowerSpec", "load_power_spec", "POWER_KEYS"]
+__all__ = ["COMMAND", "PowerSpec", "load_power_spec", "POWER_KEYS"]
 
 #: keys of the ``[power]`` table
 POWER_KEYS = (
@@ -94,7 +93,7 @@ def load_power_spec(path: str | Path) -> PowerSpec:
     """
     import difflib
 
-    from cladewise.studies.power import _check_tree, _pair, _traits, measurement_se
+    from cladewise.studies.power import check_study_tree, measurement_se, trait_names, trait_pair
     from cladewise.inference.sampling import SamplingOptions
     from cladewise.data.trees import read_tree
 
@@ -126,9 +125,9 @@ def load_power_spec(path: str | Path) -> PowerSpec:
                          "of each trait")
 
     tree = read_tree(tree_path)
-    _check_tree(tree)
+    check_study_tree(tree)
     kw: dict[str, Any] = {}
-    kw["traits"] = _traits(power.get("traits", ["trait_1", "trait_2"]))
+    kw["traits"] = trait_names(power.get("traits", ["trait_1", "trait_2"]))
     corrs = power.get("correlations", [0.0, 0.2, 0.4, 0.6])
     if not isinstance(corrs, list):
         corrs = [corrs]
@@ -140,8 +139,8 @@ def load_power_spec(path: str | Path) -> PowerSpec:
     if not isinstance(n, int) or isinstance(n, bool) or n < 2:
         raise InputError(f"[power] n_datasets must be a whole number >= 2; got {n!r}")
     kw["n_datasets"] = n
-    kw["rates"] = _pair(_number_or_list(power["rates"], "rates"), "[power] rates", positive=True).tolist()
-    kw["root_means"] = _pair(_number_or_list(power.get("root_means", 0.0), "root_means"),
+    kw["rates"] = trait_pair(_number_or_list(power["rates"], "rates"), "[power] rates", positive=True).tolist()
+    kw["root_means"] = trait_pair(_number_or_list(power.get("root_means", 0.0), "root_means"),
                              "[power] root_means").tolist()
     for key in ("standard_errors", "within_variance"):
         if key in power:
@@ -183,7 +182,7 @@ def _arguments(p: argparse.ArgumentParser) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
-    from cladewise.studies.power import _output_folder, run_power_study
+    from cladewise.studies.power import prepare_output_folder, run_power_study
 
     spec = load_power_spec(args.spec)
     if args.n_datasets is not None:
@@ -193,7 +192,7 @@ def _run(args: argparse.Namespace) -> int:
     if args.seed is not None:
         spec.kwargs["seed"] = args.seed
     # refuse a used folder now rather than after an hour of fitting
-    _output_folder(args.out, args.overwrite)
+    prepare_output_folder(args.out, args.overwrite)
 
     def say(msg: str) -> None:
         print(msg, file=sys.stderr, flush=True)
@@ -201,7 +200,7 @@ def _run(args: argparse.Namespace) -> int:
     result = run_power_study(spec.tree, options=spec.options, progress=say, **spec.kwargs)
     result.settings.update({
         "spec_path": str(spec.path), "spec_text": spec.text,
-        "command": "cladewise " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
+        "command": command_line(),
     })
     paths = result.save(args.out, overwrite=True)
     print(result.to_text())
@@ -209,5 +208,5 @@ def _run(args: argparse.Namespace) -> int:
     return 0
 
 
-register_command(Command("power", "power and false-positive rate of the correlated model on your tree, by simulation",
-                         _arguments, _run))
+COMMAND = Command("power", "power and false-positive rate of the correlated model on your tree, by simulation",
+                  _arguments, _run)

@@ -21,7 +21,6 @@ inflated on purpose, since different trees give different posteriors).
 
 from __future__ import annotations
 
-import argparse
 import dataclasses
 import json
 import math
@@ -66,9 +65,6 @@ __all__ = [
     "tree_disagreement",
     "plot_tree_sample",
     "fit_spec_tree_sample",
-    "add_tree_sample_arguments",
-    "uses_tree_sample",
-    "fit_tree_sample_from_args",
 ]
 
 #: quantities whose sign and "HDI excludes zero" verdict are checked across trees
@@ -658,7 +654,7 @@ def plot_tree_sample(
     return paths
 
 
-# =========================================================================== spec files and command line
+# =========================================================================== spec files
 def fit_spec_tree_sample(
     spec_path: str | Path,
     out_dir: str | Path | None = None,
@@ -714,35 +710,3 @@ def fit_spec_tree_sample(
         result.save(out_dir, overwrite=overwrite)
     return result
 
-
-def add_tree_sample_arguments(parser: argparse.ArgumentParser) -> None:
-    """Add ``--trees FILE`` and ``--n-trees N`` to a ``fit``-like parser."""
-    parser.add_argument("--trees", metavar="FILE",
-                        help="fit over this tree sample (Newick/NEXUS, same species) instead of one tree; "
-                             "the draws of all trees are pooled")
-    parser.add_argument("--n-trees", type=int, metavar="N", dest="n_trees",
-                        help="fit a random subset of N trees of the sample ([data] trees or --trees), "
-                             "drawn with the sampling seed")
-
-
-def uses_tree_sample(args: argparse.Namespace) -> bool:
-    """True when ``--trees`` or ``--n-trees`` was given."""
-    return getattr(args, "trees", None) is not None or getattr(args, "n_trees", None) is not None
-
-
-def fit_tree_sample_from_args(args: argparse.Namespace) -> TreeSampleFit:
-    """Run a tree-sample fit from parsed ``fit`` arguments and save it to ``args.out``.
-
-    Reads ``spec``, ``out``, ``overwrite``, ``trees``, ``n_trees`` and the optional
-    sampling overrides ``sampler``, ``chains``, ``draws``, ``tune``, ``seed``.
-    """
-    import shlex
-    import sys
-
-    command = "cladewise " + " ".join(shlex.quote(a) for a in sys.argv[1:])
-    overrides = {k: getattr(args, k, None) for k in ("sampler", "chains", "draws", "tune", "seed")}
-    return fit_spec_tree_sample(
-        args.spec, getattr(args, "out", None), trees=getattr(args, "trees", None),
-        n_trees=getattr(args, "n_trees", None), overwrite=bool(getattr(args, "overwrite", False)),
-        command=command, **overrides,
-    )

@@ -62,6 +62,10 @@ __all__ = [
     "rank_of_truth",
     "summarise_ranks",
     "measurement_se",
+    "check_study_tree",
+    "trait_pair",
+    "trait_names",
+    "prepare_output_folder",
     "plot_power",
 ]
 
@@ -93,7 +97,8 @@ def _say(progress: Progress, message: str) -> None:
 
 
 # ------------------------------------------------------------------ validation
-def _check_tree(tree: FlatTree) -> None:
+def check_study_tree(tree: FlatTree) -> None:
+    """Refuse a tree a simulation study cannot use (under 4 tips, bad lengths, zero height)."""
     if not isinstance(tree, FlatTree):
         raise InputError("tree must be a cladewise FlatTree (read one with cladewise.data.trees.read_tree)")
     if tree.n_tips < 4:
@@ -104,7 +109,8 @@ def _check_tree(tree: FlatTree) -> None:
         raise InputError("the tree has zero height: every branch length is 0")
 
 
-def _pair(value: Any, name: str, positive: bool = False) -> np.ndarray:
+def trait_pair(value: Any, name: str, positive: bool = False) -> np.ndarray:
+    """One number or two (one per trait) as a length-2 array; finite (and > 0 if ``positive``)."""
     a = np.asarray(value, dtype=float)
     try:
         a = np.broadcast_to(a, (2,)).astype(float)
@@ -115,7 +121,8 @@ def _pair(value: Any, name: str, positive: bool = False) -> np.ndarray:
     return a
 
 
-def _traits(traits: Sequence[str]) -> list[str]:
+def trait_names(traits: Sequence[str]) -> list[str]:
+    """Two different trait names, neither of them ``species``."""
     names = [str(t) for t in traits]
     if len(names) != 2 or names[0] == names[1] or "species" in names:
         raise InputError(f"traits must be two different names (not 'species'); got {list(traits)!r}")
@@ -164,7 +171,7 @@ def measurement_se(
         raise InputError("within_variance and specimens go together: give both (or standard errors instead)")
     if within_variance is None:
         return None
-    w = _pair(within_variance, "within_variance")
+    w = trait_pair(within_variance, "within_variance")
     if np.any(w < 0):
         raise InputError("within_variance must be >= 0")
     if isinstance(specimens, Mapping):
@@ -302,7 +309,7 @@ class PowerResult:
 
         An existing non-empty folder is refused unless ``overwrite`` is true.
         """
-        out = _output_folder(out_dir, overwrite)
+        out = prepare_output_folder(out_dir, overwrite)
         paths = {
             "table": out / "power_table.csv", "fits": out / "power_fits.csv",
             "json": out / "power.json", "png": out / "power.png", "svg": out / "power.svg",
@@ -318,7 +325,8 @@ class PowerResult:
         return paths
 
 
-def _output_folder(out_dir: str | Path, overwrite: bool) -> Path:
+def prepare_output_folder(out_dir: str | Path, overwrite: bool) -> Path:
+    """Create the output folder; refuse a file or a non-empty folder unless ``overwrite``."""
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InputError(f"{out} exists and is not a folder; choose another --out")
@@ -424,8 +432,8 @@ def run_power_study(
     """
     import arviz as az
 
-    _check_tree(tree)
-    names = _traits(traits)
+    check_study_tree(tree)
+    names = trait_names(traits)
     corrs = [float(c) for c in np.atleast_1d(np.asarray(correlations, dtype=float))]
     if not corrs or any(not (-1.0 < c < 1.0) for c in corrs):
         raise InputError(f"correlations must be numbers strictly between -1 and 1; got {list(correlations)!r}")
@@ -433,8 +441,8 @@ def run_power_study(
         raise InputError(f"n_datasets must be a whole number >= 2; got {n_datasets!r}")
     if not 0.5 <= float(hdi_prob) < 1.0 or not 0.0 < float(alpha) < 0.5:
         raise InputError("hdi_prob must be in [0.5, 1) and alpha in (0, 0.5)")
-    rates_v = _pair(rates, "rates", positive=True)
-    mu = _pair(root_means, "root_means")
+    rates_v = trait_pair(rates, "rates", positive=True)
+    mu = trait_pair(root_means, "root_means")
     gen = np.random.default_rng(seed)
     se_arr = measurement_se(tree, se, within_variance, specimens, seed=gen)
     options = _default_options(options)
@@ -489,7 +497,7 @@ def _simulate(tree: FlatTree, R: np.ndarray, mu: np.ndarray, se: np.ndarray | No
               gen: np.random.Generator, n: int) -> np.ndarray:
     from cladewise.studies.simulate import simulate_traits
 
-    return simulate_traits(tree, R, mu, se=se, rng=gen, n_reps=n)
+    return simulatetrait_names(tree, R, mu, se=se, rng=gen, n_reps=n)
 
 
 def _share(flags: pd.Series) -> tuple[float, float]:
@@ -621,7 +629,7 @@ def run_calibration(
     """
     import pymc as pm
 
-    _check_tree(tree)
+    check_study_tree(tree)
     if not isinstance(n_datasets, (int, np.integer)) or n_datasets < 2:
         raise InputError(f"n_datasets must be a whole number >= 2; got {n_datasets!r}")
     if (n_rank_draws + 1) % n_bins:

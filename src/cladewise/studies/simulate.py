@@ -51,7 +51,6 @@ individual) when specimens were drawn, ``true_means.csv`` (the true species mean
 
 from __future__ import annotations
 
-import argparse
 import json
 import math
 import tomllib
@@ -63,7 +62,7 @@ import numpy as np
 import pandas as pd
 
 from cladewise.errors import InputError
-from cladewise.model.evolution import check_model_name, model_warnings, transformed_lengths
+from cladewise.model.evolution import check_model_name, transformed_lengths
 from cladewise.data.trees import FlatTree, format_newick, read_tree
 
 __all__ = [
@@ -71,8 +70,7 @@ __all__ = [
     "simulate_traits",
     "simulate_dataset",
     "write_dataset",
-    "add_simulate_arguments",
-    "run_simulate",
+    "dataset_from_spec",
 ]
 
 RngLike = np.random.Generator | int | None
@@ -502,7 +500,7 @@ def write_dataset(sim: SimulatedData, out_dir: str | Path, *, overwrite: bool = 
     return paths
 
 
-# -------------------------------------------------------------- command line
+# ------------------------------------------------------------- spec files
 def _spec_matrix(spec: dict[str, Any], var_key: str, cor_key: str, k: int, required: bool) -> np.ndarray | None:
     if var_key not in spec:
         if required:
@@ -527,7 +525,9 @@ def _spec_matrix(spec: dict[str, Any], var_key: str, cor_key: str, k: int, requi
     return cor * np.outer(sd, sd)
 
 
-def _dataset_from_spec(spec_path: Path, seed_override: int | None) -> tuple[dict[str, Any], FlatTree]:
+def dataset_from_spec(spec_path: Path, seed_override: int | None) -> tuple[dict[str, Any], FlatTree]:
+    """Read a ``[simulation]`` spec: keyword arguments of :func:`simulate_dataset`
+    (plus ``replicates`` and ``seed``) and the tree."""
     try:
         doc = tomllib.loads(spec_path.read_text())
     except FileNotFoundError:
@@ -589,37 +589,3 @@ def _dataset_from_spec(spec_path: Path, seed_override: int | None) -> tuple[dict
         raise InputError("replicates must be at least 1.")
     return kwargs, read_tree(tree_path)
 
-
-def add_simulate_arguments(parser: argparse.ArgumentParser) -> None:
-    """Add the arguments of ``cladewise simulate SPEC --out DIR`` to ``parser``."""
-    parser.add_argument("spec", type=Path, help="TOML file with [data] tree and [simulation]")
-    parser.add_argument("--out", type=Path, required=True, help="output folder")
-    parser.add_argument("--overwrite", action="store_true",
-                        help="replace files in a non-empty output folder")
-    parser.add_argument("--seed", type=int, default=None, help="override the spec's seed")
-
-
-def run_simulate(args: argparse.Namespace) -> int:
-    """Run ``cladewise simulate``: simulate from a TOML spec and write the folder(s)."""
-    kwargs, tree = _dataset_from_spec(Path(args.spec), getattr(args, "seed", None))
-    reps = kwargs.pop("replicates")
-    overwrite = bool(getattr(args, "overwrite", False))
-    out = Path(args.out)
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise InputError(
-            f"output folder {out} is not empty; choose a new folder or pass --overwrite."
-        )
-    # One generator across replicates so they are independent yet reproducible.
-    gen = np.random.default_rng(kwargs["seed"])
-    seed = kwargs.pop("seed")
-    for msg in model_warnings(tree, kwargs["model"]):
-        print(f"warning: {msg}")
-    for r in range(reps):
-        sim = simulate_dataset(tree, seed=gen, **kwargs)
-        sim.truth["seed"] = seed
-        sim.truth["replicate"] = r + 1
-        target = out if reps == 1 else out / f"replicate_{r + 1:04d}"
-        write_dataset(sim, target, overwrite=overwrite)
-    where = out if reps == 1 else f"{out} ({reps} replicate folders)"
-    print(f"simulated {tree.n_tips} species x {len(kwargs['traits'])} traits -> {where}")
-    return 0
