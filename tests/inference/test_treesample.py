@@ -10,7 +10,6 @@ through a module-scoped fixture.
 
 from __future__ import annotations
 
-import argparse
 import json
 import sys
 from pathlib import Path
@@ -30,7 +29,6 @@ from cladewise.inference.fit import LOGLIK_VAR, finish_fit
 from cladewise.inference.sampling import SamplingOptions
 from cladewise.studies.simulate import simulate_traits
 from cladewise.inference.treesample import (
-    add_tree_sample_arguments,
     align_trees,
     choose_trees,
     fit_spec_tree_sample,
@@ -39,7 +37,6 @@ from cladewise.inference.treesample import (
     pool_tree_fits,
     tree_disagreement,
     tree_variance_share,
-    uses_tree_sample,
 )
 from cladewise.data.trees import FlatTree, covariance, order_tips
 
@@ -279,14 +276,6 @@ def test_disagreement_warnings():
     assert len(hdi) == 1 and "excludes zero on 1 of 2" in hdi[0]
     rates = table([1.0, -1.0], [0.5, -2], [2, -0.5]).assign(variable="evo_rate")
     assert tree_disagreement(rates) == []
-
-
-def test_command_line_arguments():
-    p = argparse.ArgumentParser()
-    add_tree_sample_arguments(p)
-    a = p.parse_args(["--trees", "x.nex", "--n-trees", "5"])
-    assert a.trees == "x.nex" and a.n_trees == 5 and uses_tree_sample(a)
-    assert not uses_tree_sample(p.parse_args([]))
 
 
 def test_spec_without_tree_sample(tmp_path):

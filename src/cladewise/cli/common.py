@@ -4,9 +4,8 @@ from __future__ import annotations
 
 import argparse
 import shlex
-import sys
 from dataclasses import dataclass
-from typing import Callable
+from typing import Callable, Sequence
 
 __all__ = ["Command", "command_line"]
 
@@ -24,6 +23,6 @@ class Command:
     run: Callable[[argparse.Namespace], int]
 
 
-def command_line() -> str:
-    """The command as typed, for the record kept beside a result."""
-    return "cladewise " + " ".join(shlex.quote(a) for a in sys.argv[1:])
+def command_line(argv: Sequence[str]) -> str:
+    """The command as typed (``argv`` without the program name), for the record kept beside a result."""
+    return "cladewise " + " ".join(shlex.quote(a) for a in argv)

@@ -21,7 +21,7 @@ from typing import Sequence
 
 from cladewise import __version__
 from cladewise.cli import check, compare, fit, grid, power, report, simulate
-from cladewise.cli.common import Command
+from cladewise.cli.common import Command, command_line
 from cladewise.errors import FitError, InputError
 
 __all__ = ["COMMANDS", "EXIT_INTERRUPTED", "EXIT_BROKEN_PIPE", "main"]
@@ -96,6 +96,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     warnings.filterwarnings("ignore", message=".*BLAS.*")
     warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
     command = None
+    argv = list(sys.argv[1:] if argv is None else argv)
     try:
         parser = _parser()
         try:
@@ -107,6 +108,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if not command:
             parser.print_help(sys.stderr)
             return 2
+        args.command_line = command_line(argv)  # recorded beside results
         try:
             status = int(args._run(args))
         except (InputError, FitError) as exc:

@@ -51,7 +51,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from cladewise.cli.common import Command, command_line
+from cladewise.cli.common import Command
 from cladewise.errors import InputError
 
 __all__ = ["COMMAND", "PowerSpec", "load_power_spec", "POWER_KEYS"]
@@ -200,7 +200,7 @@ def _run(args: argparse.Namespace) -> int:
     result = run_power_study(spec.tree, options=spec.options, progress=say, **spec.kwargs)
     result.settings.update({
         "spec_path": str(spec.path), "spec_text": spec.text,
-        "command": command_line(),
+        "command": args.command_line,
     })
     paths = result.save(args.out, overwrite=True)
     print(result.to_text())
