@@ -497,7 +497,7 @@ def _simulate(tree: FlatTree, R: np.ndarray, mu: np.ndarray, se: np.ndarray | No
               gen: np.random.Generator, n: int) -> np.ndarray:
     from cladewise.studies.simulate import simulate_traits
 
-    return simulatetrait_names(tree, R, mu, se=se, rng=gen, n_reps=n)
+    return simulate_traits(tree, R, mu, se=se, rng=gen, n_reps=n)
 
 
 def _share(flags: pd.Series) -> tuple[float, float]:
