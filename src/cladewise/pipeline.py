@@ -117,33 +117,39 @@ def fit_spec(
 # =============================================================================
 @dataclass
 class CheckReport:
-    """What ``check`` found: the data summary and the problems that would stop a fit."""
+    """What :func:`check_spec` found: the data summary and non-blocking problems (shim until flow lands)."""
 
-    summary: Any
-    problems: list[str]
+    spec_path: Path
+    data_summary: Any
+    model: dict[str, Any] | None = None
+    problems: list[str] | None = None
 
     @property
     def ok(self) -> bool:
         return not self.problems
 
+    def to_dict(self) -> dict[str, Any]:
+        return {"spec_path": str(self.spec_path), "data": self.data_summary.to_dict(), "model": self.model,
+                "problems": list(self.problems or [])}
+
+    def to_text(self) -> str:
+        return self.data_summary.to_text()
+
 
 def check_spec(spec_path: str | Path) -> CheckReport:
-    """Run the validations of a fit up to sampling (shim until flow lands)."""
-    from cladewise.errors import FitError
+    """Run the validations of a fit up to sampling; blocking problems raise InputError (shim)."""
+    from dataclasses import asdict
+
     from cladewise.model.build import build_model
 
     spec = load_spec(spec_path)
-    _, summary = load_data(spec)
-    problems: list[str] = []
-    try:
-        if spec.model:
-            prep = prepare_analysis(spec_path)
-            build_model(prep.model_data, prep.model_spec)
-        else:
-            SamplingOptions.from_dict(dict(spec.sampling))
-    except (InputError, FitError) as exc:
-        problems.append(str(exc))
-    return CheckReport(summary, problems)
+    if not spec.model:
+        _, summary = load_data(spec)
+        SamplingOptions.from_dict(dict(spec.sampling))
+        return CheckReport(spec.path, summary)
+    prep = prepare_analysis(spec_path)
+    build_model(prep.model_data, prep.model_spec)
+    return CheckReport(spec.path, prep.data_summary, model=asdict(prep.model_spec))
 
 
 def fit_from_spec(
@@ -155,7 +161,7 @@ def fit_from_spec(
     n_trees: int | None = None,
     tree_seed: int | None = None,
     keep_partial: bool = False,
-    progress: bool = True,
+    progress: bool | None = True,
     command: str | None = None,
     **sampling_overrides: Any,
 ) -> FitResult:

@@ -83,7 +83,7 @@ def test_ctrl_c_names_what_was_kept(tiny, tmp_path, monkeypatch, capsys):
 
     def stop(*args, **kwargs):
         exc = KeyboardInterrupt()
-        exc.saved_to = out  # the pipeline marks where partial draws went (--keep-partial)
+        exc.saved = out  # the pipeline names where the partial draws went (--keep-partial)
         raise exc
 
     monkeypatch.setattr(cladewise.pipeline, "fit_from_spec", stop)

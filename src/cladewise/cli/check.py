@@ -10,7 +10,6 @@ import argparse
 import json
 
 from cladewise.cli.common import Command
-from cladewise.errors import InputError
 
 __all__ = ["COMMAND"]
 
@@ -23,15 +22,14 @@ def _arguments(p: argparse.ArgumentParser) -> None:
 def _run(args: argparse.Namespace) -> int:
     from cladewise.pipeline import check_spec
 
-    report = check_spec(args.spec)
+    report = check_spec(args.spec)  # a problem that would stop a fit raises InputError
     if args.json:
-        print(json.dumps({**report.summary.to_dict(), "problems": list(report.problems)}, indent=2, default=str))
+        doc = report.to_dict()
+        # the data summary stays at the top level, as it always was
+        print(json.dumps({**doc.pop("data"), **doc}, indent=2, default=str))
     else:
-        print(report.summary.to_text())
-        if report.ok:
-            print("\nThe data can be analysed.")
-    if not report.ok:
-        raise InputError("the spec cannot be fitted as it is: " + "; ".join(report.problems))
+        print(report.to_text())
+        print("\nThe data can be analysed.")
     return 0
 
 

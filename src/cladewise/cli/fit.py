@@ -48,7 +48,7 @@ def _run(args: argparse.Namespace) -> int:
 
     result = fit_from_spec(
         args.spec, out=args.out, overwrite=args.overwrite, trees=args.trees, n_trees=args.n_trees,
-        keep_partial=args.keep_partial, progress=sys.stderr.isatty(), command=args.command_line,
+        keep_partial=args.keep_partial, progress=None, command=args.command_line,
         **{k: getattr(args, k) for k in _SAMPLING},
     )
     print(result.to_text())

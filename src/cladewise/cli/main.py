@@ -68,9 +68,9 @@ def _say(message: str) -> None:
 
 
 def _interrupted(command: str | None, exc: KeyboardInterrupt) -> None:
-    saved = getattr(exc, "saved_to", None)  # set by the pipeline when partial draws were kept
+    saved = getattr(exc, "saved", None)  # the pipeline's FitInterrupted names where partial draws went
     if saved is not None:
-        kept = f"partial draws saved to {saved} (marked partial)"
+        kept = f"the draws made so far were saved to {saved}, marked partial"
     else:
         kept = _KEPT_ON_INTERRUPT.get(command or "", "nothing saved")
     try:
