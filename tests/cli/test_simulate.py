@@ -40,7 +40,7 @@ def test_simulate_command(tmp_path, capsys):
     # a used folder is refused and left as it was
     before = (tmp_path / "a" / "species.csv").read_text()
     assert main(["simulate", str(spec), "--out", str(tmp_path / "a")]) == 2
-    assert "not empty" in capsys.readouterr().err
+    assert "--overwrite" in capsys.readouterr().err  # the message says how to go on
     assert (tmp_path / "a" / "species.csv").read_text() == before
     # --seed overrides the spec's seed
     assert main(["simulate", str(spec), "--out", str(tmp_path / "s"), "--seed", "8"]) == 0
