@@ -76,3 +76,17 @@ def test_version_and_no_command(capsys):
     assert main(["--version"]) == 0
     assert __version__ in capsys.readouterr().out
     assert main([]) == 2
+
+
+def test_check_reports_a_model_fit_would_refuse(tmp_path, capsys):
+    # [model] names a trait the table does not have: fit would stop, so check must too
+    (tmp_path / "t.nwk").write_text("((A:1,B:1):1,(C:1,D:1):1);")
+    (tmp_path / "x.csv").write_text("species,v,w\nA,1,2\nB,2,1\nC,3,5\nD,4,3\n")
+    (tmp_path / "s.toml").write_text(
+        '[data]\ntree = "t.nwk"\ntraits = "x.csv"\n[model]\nkind = "correlated"\ntraits = ["v", "nope"]\n'
+    )
+    rc = main(["check", str(tmp_path / "s.toml")])
+    captured = capsys.readouterr()
+    assert rc == 2
+    assert "The data can be analysed." not in captured.out
+    assert "nope" in captured.err and "Traceback" not in captured.err

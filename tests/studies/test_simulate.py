@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import argparse
 import json
 
 import dendropy
@@ -13,8 +12,6 @@ import pytest
 from cladewise.errors import InputError
 from cladewise.model.evolution import transformed_lengths
 from cladewise.studies.simulate import (
-    add_simulate_arguments,
-    run_simulate,
     simulate_dataset,
     simulate_traits,
     write_dataset,
@@ -218,55 +215,3 @@ def test_write_dataset_refuses_to_overwrite(tmp_path):
         for j in range(i + 1, 8):
             d = pdm.patristic_distance(taxa[f"sp{i}"], taxa[f"sp{j}"])
             assert d == pytest.approx(C[i, i] + C[j, j] - 2 * C[i, j], rel=1e-12)
-
-
-def _args(spec, out, *extra):
-    p = argparse.ArgumentParser()
-    add_simulate_arguments(p)
-    return p.parse_args([str(spec), "--out", str(out), *extra])
-
-
-def test_command_line_spec(tmp_path):
-    # Invented example tree and settings.
-    (tmp_path / "tree.nwk").write_text("(((a:1,b:1):0.5,c:1.5):1,(d:2,(e:0.5,f:0.5):1.5):0.5);\n")
-    spec = tmp_path / "spec.toml"
-    spec.write_text(
-        '[data]\ntree = "tree.nwk"\n\n[simulation]\n'
-        'traits = ["mass", "speed"]\nrates = [0.04, 0.09]\ncorrelation = 0.6\n'
-        "root_means = [2.0, 1.0]\nwithin_variance = [0.02, 0.05]\n"
-        "specimens_per_species = [3, 6]\nmissing_share = 0.1\nseed = 7\n"
-        'model = "lambda"\nmodel_parameters = { lam = 0.5 }\n'
-    )
-    assert run_simulate(_args(spec, tmp_path / "a")) == 0
-    assert run_simulate(_args(spec, tmp_path / "b")) == 0
-    a = pd.read_csv(tmp_path / "a" / "species.csv")
-    pd.testing.assert_frame_equal(a, pd.read_csv(tmp_path / "b" / "species.csv"))
-    assert sorted(a["species"]) == list("abcdef")
-    assert int(a[["mass", "speed"]].isna().sum().sum()) == 1  # round(0.1 * 12)
-    truth = json.loads((tmp_path / "a" / "truth.json").read_text())
-    np.testing.assert_allclose(truth["rate_matrix"],
-                               [[0.04, 0.6 * 0.2 * 0.3], [0.6 * 0.2 * 0.3, 0.09]])
-    assert truth["model"] == "lambda" and truth["model_parameters"] == {"lam": 0.5}
-    with pytest.raises(InputError, match="not empty"):
-        run_simulate(_args(spec, tmp_path / "a"))
-    # Replicates go to numbered folders and differ from each other.
-    spec.write_text(spec.read_text().replace("seed = 7", "seed = 7\nreplicates = 2"))
-    run_simulate(_args(spec, tmp_path / "r"))
-    r1 = pd.read_csv(tmp_path / "r" / "replicate_0001" / "species.csv")
-    r2 = pd.read_csv(tmp_path / "r" / "replicate_0002" / "species.csv")
-    assert not r1["mass"].equals(r2["mass"])
-    spec.write_text(spec.read_text() + "rate = 1\n")
-    with pytest.raises(InputError, match="unknown"):
-        run_simulate(_args(spec, tmp_path / "c"))
-
-
-def test_documented_spec_example_runs(tmp_path):
-    # The TOML example in the module docstring must stay valid.
-    import cladewise.config.simulation as mod
-
-    block = mod.__doc__.split("SPEC is a TOML file::\n\n")[1].split("\nOutput folder")[0]
-    (tmp_path / "spec.toml").write_text("\n".join(line[4:] for line in block.splitlines()))
-    (tmp_path / "tree.nwk").write_text("((a:1,b:1):1,(c:0.5,d:0.5):1.5,e:2);\n")
-    run_simulate(_args(tmp_path / "spec.toml", tmp_path / "out"))
-    spec = pd.read_csv(tmp_path / "out" / "specimens.csv")
-    assert spec.groupby("species").size().between(3, 12).all()

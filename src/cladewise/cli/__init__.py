@@ -1,4 +1,4 @@
-"""The command line: a table of subcommands, thin over the library."""
+"""The command line: one module per subcommand and an explicit table of them (:mod:`cladewise.cli.main`)."""
 
 from cladewise.cli.main import main
 

@@ -6,10 +6,10 @@ import argparse
 import json
 from pathlib import Path
 
-from cladewise.cli.main import Command, register_command
+from cladewise.cli.common import Command
 from cladewise.errors import InputError
 
-__all__: list[str] = []
+__all__ = ["COMMAND"]
 
 OUTPUT_FILES = ("compare.csv", "compare.json")
 
@@ -21,6 +21,19 @@ def _arguments(p: argparse.ArgumentParser) -> None:
                    help="folder for compare.csv and compare.json (default: the folder holding the first fit)")
     p.add_argument("--overwrite", action="store_true", help="replace existing compare.csv / compare.json")
     p.add_argument("--no-report", action="store_true", help="do not write the HTML comparison report")
+
+
+def _refuse_repeats(dirs: list[Path]) -> None:
+    seen: dict[Path, Path] = {}
+    for d in dirs:
+        key = d.resolve()
+        if key in seen:
+            same = f"{seen[key]} and {d}" if str(seen[key]) != str(d) else str(d)
+            raise InputError(
+                f"the fit folder {same} is given twice; compare needs two or more different fits "
+                "of the same data (e.g. 'cladewise compare fit_bm fit_ou')"
+            )
+        seen[key] = d
 
 
 def _names(dirs: list[Path], given: list[str] | None) -> list[str]:
@@ -43,6 +56,7 @@ def _run(args: argparse.Namespace) -> int:
     dirs = [Path(d) for d in args.fits]
     if len(dirs) < 2:
         raise InputError("compare needs at least two fit folders")
+    _refuse_repeats(dirs)
     names = _names(dirs, args.names)
     out = Path(args.out) if args.out else dirs[0].resolve().parent
     targets = [out / f for f in OUTPUT_FILES]
@@ -61,16 +75,13 @@ def _run(args: argparse.Namespace) -> int:
         if r.flagged:
             print(f"\n{name}:\n{r.to_text()}")
     print(f"\nSaved: {targets[0]}, {targets[1]}")
-    try:
-        from cladewise import report
-    except ImportError:
-        report = None
-    if not args.no_report and report is not None and hasattr(report, "write_comparison_report"):
-        path = report.write_comparison_report(
-            result.table.set_index("model"), out, influential=result.influential, notes=result.notes
-        )
+    if not args.no_report:
+        from cladewise.report import write_comparison_report
+
+        path = write_comparison_report(result.table.set_index("model"), out, influential=result.influential,
+                                       notes=result.notes)
         print(f"Report: {path}")
     return 0
 
 
-register_command(Command("compare", "rank saved fits of the same data by leave-one-species-out ELPD", _arguments, _run))
+COMMAND = Command("compare", "rank saved fits of the same data by leave-one-species-out ELPD", _arguments, _run)

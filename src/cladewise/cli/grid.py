@@ -1,15 +1,15 @@
-"""The ``cladewise grid GRID.toml --out DIR`` subcommand: many fits through dask."""
+"""``cladewise grid GRID.toml --out DIR``: many fits through dask."""
 
 from __future__ import annotations
 
 import argparse
 
-from cladewise.cli.main import Command, register_command
+from cladewise.cli.common import Command
 
-__all__: list[str] = []
+__all__ = ["COMMAND"]
 
 
-def _grid_arguments(p: argparse.ArgumentParser) -> None:
+def _arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("grid", help="grid file (TOML) with [[fit]] and/or [[cross]] tables; "
                                 "format in the docstring of cladewise.studies.grid")
     p.add_argument("--out", required=True, help="folder for one sub-folder per fit (finished fits are skipped)")
@@ -19,7 +19,7 @@ def _grid_arguments(p: argparse.ArgumentParser) -> None:
                    help="worker processes of the local cluster (default 2)")
 
 
-def _run_grid(args: argparse.Namespace) -> int:
+def _run(args: argparse.Namespace) -> int:
     from cladewise.studies.grid import format_status, run_grid
 
     table = run_grid(args.grid, args.out, scheduler=args.scheduler, n_workers=args.workers)
@@ -28,5 +28,4 @@ def _run_grid(args: argparse.Namespace) -> int:
     return 1 if (table["status"] == "failed").any() else 0
 
 
-register_command(Command("grid", "run many fits (specs x tree samples) in parallel, resuming finished ones",
-                         _grid_arguments, _run_grid))
+COMMAND = Command("grid", "run many fits (specs x tree samples) in parallel, resuming finished ones", _arguments, _run)

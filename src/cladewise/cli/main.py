@@ -1,87 +1,52 @@
 """The ``cladewise`` command line: a thin layer over the library.
 
-Subcommands live in a table. A module adds one by calling
-:func:`register_command` at import time and by being named in
-:data:`COMMAND_MODULES`, which :func:`main` imports before parsing.
+Every subcommand is a module of this package with a ``COMMAND``; :data:`COMMANDS`
+lists them in the order of ``cladewise --help``.
 
-User mistakes (:class:`~cladewise.errors.InputError`) end with exit status 2 and a
-one-paragraph message on stderr, without a traceback. Anything else is a bug and
-is shown in full.
+Exit statuses: 0 success; 2 a user mistake (:class:`~cladewise.errors.InputError`,
+:class:`~cladewise.errors.FitError` or a usage error), reported as one paragraph on
+stderr without a traceback; 3 ``fit --strict`` with failed diagnostics; 130 Ctrl-C,
+one line on stderr; 141 the reader of stdout went away (``cladewise check spec |
+head -1``), quietly. Anything else is a bug and is shown in full.
 """
 
 from __future__ import annotations
 
 import argparse
-import importlib
-import json
+import os
 import sys
 import textwrap
 import warnings
-from dataclasses import dataclass
-from typing import Callable, Sequence
+from typing import Sequence
 
 from cladewise import __version__
+from cladewise.cli import check, compare, fit, grid, power, report, simulate
+from cladewise.cli.common import Command, command_line
 from cladewise.errors import FitError, InputError
 
-__all__ = ["Command", "COMMAND_MODULES", "main", "register_command"]
+__all__ = ["COMMANDS", "EXIT_INTERRUPTED", "EXIT_BROKEN_PIPE", "main"]
 
-
-@dataclass(frozen=True)
-class Command:
-    """One subcommand: its name, one-line help, argument setup and action.
-
-    ``run`` returns the exit status (0 for success).
-    """
-
-    name: str
-    help: str
-    add_arguments: Callable[[argparse.ArgumentParser], None]
-    run: Callable[[argparse.Namespace], int]
-
-
-_COMMANDS: dict[str, Command] = {}
-
-#: Modules imported by :func:`main` so that their commands get registered
-#: (e.g. ``"cladewise.fit_command"``). Each calls :func:`register_command`.
-COMMAND_MODULES: list[str] = ["cladewise.cli.commands", "cladewise.cli.report", "cladewise.cli.compare", "cladewise.cli.grid", "cladewise.cli.power"]
-
-
-def register_command(command: Command) -> Command:
-    """Add a subcommand to the table (a later one with the same name replaces it)."""
-    _COMMANDS[command.name] = command
-    return command
-
-
-# ------------------------------------------------------------------------ check
-def _check_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("spec", help="analysis specification (TOML) whose [data] section is checked")
-    p.add_argument("--json", action="store_true", help="print the summary as JSON instead of text")
-
-
-def _run_check(args: argparse.Namespace) -> int:
-    from cladewise.config.analysis import load_data, load_spec
-
-    spec = load_spec(args.spec)
-    _, summary = load_data(spec)
-    if args.json:
-        print(json.dumps(summary.to_dict(), indent=2, default=str))
-    else:
-        print(summary.to_text())
-        print("\nThe data can be analysed.")
-    return 0
-
-
-register_command(
-    Command(
-        "check",
-        "read the files of a spec, match names and summarise the data",
-        _check_arguments,
-        _run_check,
-    )
+#: every subcommand, in the order of ``cladewise --help``
+COMMANDS: tuple[Command, ...] = (
+    check.COMMAND,
+    fit.COMMAND,
+    simulate.COMMAND,
+    report.COMMAND,
+    compare.COMMAND,
+    grid.COMMAND,
+    power.COMMAND,
 )
 
+#: what an interrupt leaves behind, for commands that keep something
+_KEPT_ON_INTERRUPT = {
+    "grid": "finished fits are kept in the output folder and skipped when the grid is run again",
+    "simulate": "folders already written are kept (the last one may be incomplete)",
+}
 
-# ------------------------------------------------------------------------- main
+EXIT_INTERRUPTED = 130  # 128 + SIGINT, as a shell reports a Ctrl-C
+EXIT_BROKEN_PIPE = 141  # 128 + SIGPIPE, as a shell reports a reader that went away
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="cladewise",
@@ -89,7 +54,7 @@ def _parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"cladewise {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    for cmd in _COMMANDS.values():
+    for cmd in COMMANDS:
         p = sub.add_parser(cmd.name, help=cmd.help, description=cmd.help)
         cmd.add_arguments(p)
         p.set_defaults(_run=cmd.run)
@@ -102,34 +67,62 @@ def _say(message: str) -> None:
     print(wrapped, file=sys.stderr)
 
 
+def _interrupted(command: str | None, exc: KeyboardInterrupt) -> None:
+    saved = getattr(exc, "saved", None)  # the pipeline's FitInterrupted names where partial draws went
+    if saved is not None:
+        kept = f"the draws made so far were saved to {saved}, marked partial"
+    else:
+        kept = _KEPT_ON_INTERRUPT.get(command or "", "nothing saved")
+    try:
+        print(f"cladewise: interrupted; {kept}", file=sys.stderr, flush=True)
+    except (OSError, ValueError):
+        pass
+
+
+def _silence_stdout() -> None:
+    # The reader of stdout has gone; point stdout at devnull so that the flush at
+    # interpreter exit does not raise again (Python docs, "Note on SIGPIPE").
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):
+        pass  # stdout is not a real file (e.g. captured by a test runner)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     # PyTensor warns at import that no BLAS is linked; sampling runs through numba
     # (nutpie), so the warning only confuses users of the command line.
     warnings.filterwarnings("ignore", message=".*BLAS.*")
     warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz")
-    for mod in COMMAND_MODULES:
-        importlib.import_module(mod)
-    parser = _parser()
+    command = None
+    argv = list(sys.argv[1:] if argv is None else argv)
     try:
-        args = parser.parse_args(argv)
-    except SystemExit as exc:  # --help, --version, usage errors
-        return int(exc.code or 0) if not isinstance(exc.code, str) else 2
-    if not getattr(args, "command", None):
-        parser.print_help(sys.stderr)
-        return 2
-    try:
-        return int(args._run(args))
-    except (InputError, FitError) as exc:
-        _say(str(exc))
-        return 2
-    except KeyboardInterrupt:
-        print("cladewise: interrupted", file=sys.stderr)
-        return 130
+        parser = _parser()
+        try:
+            args = parser.parse_args(argv)
+        except SystemExit as exc:  # --help, --version, usage errors
+            sys.stdout.flush()
+            return int(exc.code or 0) if not isinstance(exc.code, str) else 2
+        command = getattr(args, "command", None)
+        if not command:
+            parser.print_help(sys.stderr)
+            return 2
+        args.command_line = command_line(argv)  # recorded beside results
+        try:
+            status = int(args._run(args))
+        except (InputError, FitError) as exc:
+            _say(str(exc))
+            status = 2
+        sys.stdout.flush()  # inside the try, so a closed pipe is seen here
+        return status
+    except KeyboardInterrupt as exc:
+        _interrupted(command, exc)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        _silence_stdout()
+        return EXIT_BROKEN_PIPE
 
 
 if __name__ == "__main__":  # pragma: no cover
-    # run through the package module so subcommands register on the same table
-    from cladewise.cli.main import main as _main
-
-    sys.exit(_main())
+    sys.exit(main())

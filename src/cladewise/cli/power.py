@@ -7,8 +7,34 @@ HDI of the evolutionary correlation excludes zero, beside how often a Pearson te
 that ignores the tree gives p < 0.05 on the same data. At a true correlation of 0 the
 share is the false-positive rate. See :func:`cladewise.studies.power.run_power_study`.
 
-SPEC is a TOML file with ``[data] tree`` and a ``[power]`` table; the format and
-its reader are in :mod:`cladewise.config.power`.
+SPEC is a TOML file. Only ``tree`` is read from ``[data]`` (other keys are ignored,
+so a fit spec with a ``[power]`` table added works too)::
+
+    # Invented example.
+    [data]
+    tree = "tree.nwk"                  # relative to this file; the first tree is used
+
+    [power]
+    traits = ["head_width", "prey_size"]   # two labels; default ["trait_1", "trait_2"]
+    correlations = [0.0, 0.2, 0.4, 0.6]    # true evolutionary correlations (default)
+    n_datasets = 100                   # simulated data sets per correlation (default 100)
+    rates = [0.04, 0.09]               # Brownian rate per trait: variance per unit
+                                       # branch length (required; one number for both)
+    root_means = [0.0, 0.0]            # values at the root (default 0)
+    # Measurement error of the species means (optional; none by default), either
+    standard_errors = [0.05, 0.1]      # known se: one number or one per trait
+    # or a within-species variance with the number of specimens per species:
+    # within_variance = [0.02, 0.05]
+    # specimens_per_species = 5        # a number, [low, high] (drawn once per
+    #                                  # species) or a table { species_a = 3, ... }
+    hdi_prob = 0.95                    # HDI that must exclude 0 (default 0.95)
+    alpha = 0.05                       # level of the Pearson test (default 0.05)
+    seed = 1
+
+    [sampling]                         # optional, as in a fit spec; default for a
+    chains = 2                         # study: 2 chains, 500 draws, 500 tuning steps
+    draws = 500
+    tune = 500
 
 Output folder (an existing non-empty folder is refused unless ``--overwrite``):
 ``power_table.csv`` (one row per correlation: shares and Monte Carlo standard
@@ -19,18 +45,18 @@ the spec text and the table), ``power.png`` and ``power.svg`` (the figure).
 from __future__ import annotations
 
 import argparse
-import shlex
 import sys
+from pathlib import Path
 
-from cladewise.cli.main import Command, register_command
+from cladewise.cli.common import Command
 from cladewise.config.power import load_power_spec
 from cladewise.errors import InputError
 
-__all__: list[str] = []
+__all__ = ["COMMAND"]
 
 
 def _arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("spec", help="TOML file with [data] tree and a [power] table (format: see the docs of cladewise.config.power)")
+    p.add_argument("spec", help="TOML file with [data] tree and a [power] table (see the docs of cladewise.cli.power)")
     p.add_argument("--out", required=True, help="folder for power_table.csv, power_fits.csv, power.json, power.png/.svg")
     p.add_argument("--overwrite", action="store_true", help="replace files in an existing non-empty folder")
     p.add_argument("--n-datasets", type=int, help="override [power] n_datasets")
@@ -58,7 +84,7 @@ def _run(args: argparse.Namespace) -> int:
     result = run_power_study(spec.tree, options=spec.options, progress=say, **spec.kwargs)
     result.settings.update({
         "spec_path": str(spec.path), "spec_text": spec.text,
-        "command": "cladewise " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
+        "command": args.command_line,
     })
     paths = result.save(args.out, overwrite=True)
     paths.update(save_power_figure(result, args.out))
@@ -67,5 +93,5 @@ def _run(args: argparse.Namespace) -> int:
     return 0
 
 
-register_command(Command("power", "power and false-positive rate of the correlated model on your tree, by simulation",
-                         _arguments, _run))
+COMMAND = Command("power", "power and false-positive rate of the correlated model on your tree, by simulation",
+                  _arguments, _run)

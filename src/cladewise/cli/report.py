@@ -1,19 +1,19 @@
-"""The ``cladewise report DIR`` subcommand: (re)write the HTML report of a fit folder."""
+"""``cladewise report DIR``: (re)write the HTML report of a fit folder."""
 
 from __future__ import annotations
 
 import argparse
 
-from cladewise.cli.main import Command, register_command
+from cladewise.cli.common import Command
 
-__all__: list[str] = []
+__all__ = ["COMMAND"]
 
 
-def _report_arguments(p: argparse.ArgumentParser) -> None:
+def _arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("folder", help="fit folder written by 'cladewise fit' (posterior.nc, summary.json)")
 
 
-def _run_report(args: argparse.Namespace) -> int:
+def _run(args: argparse.Namespace) -> int:
     from cladewise.report import build_fit_report
 
     res = build_fit_report(args.folder)
@@ -25,9 +25,4 @@ def _run_report(args: argparse.Namespace) -> int:
     return 0
 
 
-register_command(Command(
-    "report",
-    "write report.html (with figures/ and tables/) for a saved fit folder",
-    _report_arguments,
-    _run_report,
-))
+COMMAND = Command("report", "write report.html (with figures/ and tables/) for a saved fit folder", _arguments, _run)

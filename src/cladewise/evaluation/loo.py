@@ -409,6 +409,17 @@ def _kind(view: _FitView) -> str:
     return kind
 
 
+def _refuse_repeated_fit(views: list[_FitView]) -> None:
+    # one fit under two names would be ranked against itself, with weight split evenly
+    for i, a in enumerate(views):
+        for b in views[i + 1:]:
+            if a.idata is b.idata or a.idata.posterior.equals(b.idata.posterior):
+                raise InputError(
+                    f"{a.label!r} and {b.label!r} hold identical posterior draws: the same fit is given twice. "
+                    "Compare different models fitted to the same data."
+                )
+
+
 def _check_comparable(views: list[_FitView], obs: list[xr.DataArray]) -> tuple[str, list[str]]:
     """Refuse fits scored on different data; return (loglik_kind, notes)."""
     notes: list[str] = []
@@ -529,6 +540,7 @@ def compare_fits(
     if len(set(names)) != len(names):
         raise InputError("model names must differ")
     views = [_view(f, str(n)) for n, f in fits.items()]
+    _refuse_repeated_fit(views)
     obs = [_observed(v) for v in views]
     kind, notes = _check_comparable(views, obs)
     order = [str(s) for s in obs[0]["species"].values]

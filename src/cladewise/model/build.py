@@ -39,6 +39,7 @@ and :func:`build_model`); every prior used is listed in ``BuiltModel.priors``.
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field, asdict
 from typing import Any
 
@@ -530,6 +531,14 @@ def _species_terms(y, observed, traits, pri, priors):
     return E
 
 
+_FORMULA_HINT = 'a column name with spaces or dashes goes in backticks, e.g. formula = "y ~ `body mass`"'
+
+
+def _plain(error: Exception) -> str:
+    # formulaic marks the place of a syntax error with terminal colour codes
+    return re.sub(r"\x1b\[[0-9;]*m", "", str(error)).strip()
+
+
 def _regression_data(data: ModelData, spec: ModelSpec):
     from formulaic import Formula
     from formulaic.errors import FormulaicError
@@ -538,19 +547,20 @@ def _regression_data(data: ModelData, spec: ModelSpec):
         f = Formula(spec.formula)
         needed = sorted(f.required_variables)
     except FormulaicError as e:
-        raise InputError(f"could not read the formula {spec.formula!r}: {e}") from None
+        raise InputError(f"could not read the formula {spec.formula!r}: {_plain(e)} ({_FORMULA_HINT})") from None
     absent = [v for v in needed if v not in data.values.columns]
     if absent:
+        odd = any(not str(c).isidentifier() for c in data.values.columns)
         raise InputError(
             f"the formula {spec.formula!r} names {absent}, which are not columns of the trait table; "
-            "available: " + ", ".join(map(str, data.values.columns))
+            "available: " + ", ".join(map(str, data.values.columns)) + (f" ({_FORMULA_HINT})" if odd else "")
         )
     from formulaic import model_matrix
 
     try:
         mm = model_matrix(spec.formula, data.values, na_action="ignore")
     except FormulaicError as e:
-        raise InputError(f"could not build the design from {spec.formula!r}: {e}") from None
+        raise InputError(f"could not build the design from {spec.formula!r}: {_plain(e)} ({_FORMULA_HINT})") from None
     if mm.lhs.shape[1] != 1:
         raise InputError("the formula must have exactly one response on the left of '~'")
     response = str(mm.lhs.columns[0])

@@ -19,7 +19,6 @@ Command line: ``cladewise simulate SPEC --out DIR``; the SPEC format (the
 
 from __future__ import annotations
 
-import argparse
 import json
 import math
 from dataclasses import dataclass, field
@@ -49,8 +48,6 @@ __all__ = [
     "simulate_traits",
     "simulate_dataset",
     "write_dataset",
-    "add_simulate_arguments",
-    "run_simulate",
 ]
 
 
@@ -325,38 +322,3 @@ def _write_dataset_files(sim: SimulatedData, folder: Path) -> None:
     if sim.tree is not None:
         # 17 significant digits: lengths round-trip exactly.
         (folder / "tree.nwk").write_text(format_newick(sim.tree, digits=17) + "\n")
-
-
-# -------------------------------------------------------------- command line
-def add_simulate_arguments(parser: argparse.ArgumentParser) -> None:
-    """Add the arguments of ``cladewise simulate SPEC --out DIR`` to ``parser``."""
-    parser.add_argument("spec", type=Path, help="TOML file with [data] tree and [simulation]")
-    parser.add_argument("--out", type=Path, required=True, help="output folder")
-    parser.add_argument("--overwrite", action="store_true",
-                        help="replace files in a non-empty output folder")
-    parser.add_argument("--seed", type=int, default=None, help="override the spec's seed")
-
-
-def run_simulate(args: argparse.Namespace) -> int:
-    """Run ``cladewise simulate``: simulate from a TOML spec and write the folder(s)."""
-    spec = load_simulation_spec(Path(args.spec), getattr(args, "seed", None))
-    kwargs, tree, reps, seed = spec.settings, spec.tree, spec.replicates, spec.seed
-    overwrite = bool(getattr(args, "overwrite", False))
-    out = Path(args.out)
-    check_output_folder(out, overwrite=overwrite, inputs=[args.spec], what="data set", add_to=reps > 1)
-    if reps > 1:
-        out.mkdir(parents=True, exist_ok=True)
-        write_marker(out, "simulate")
-    # One generator across replicates so they are independent yet reproducible.
-    gen = np.random.default_rng(seed)
-    for msg in model_warnings(tree, kwargs["model"]):
-        print(f"warning: {msg}")
-    for r in range(reps):
-        sim = simulate_dataset(tree, seed=gen, **kwargs)
-        sim.truth["seed"] = seed
-        sim.truth["replicate"] = r + 1
-        target = out if reps == 1 else out / f"replicate_{r + 1:04d}"
-        write_dataset(sim, target, overwrite=overwrite, inputs=[args.spec])
-    where = out if reps == 1 else f"{out} ({reps} replicate folders)"
-    print(f"simulated {tree.n_tips} species x {len(kwargs['traits'])} traits -> {where}")
-    return 0
