@@ -58,8 +58,8 @@ def test_simulate_command(tmp_path, capsys):
 
 
 def test_documented_spec_example_runs(tmp_path):
-    # The TOML example in the docstring of cladewise.studies.simulate must stay valid.
-    import cladewise.studies.simulate as mod
+    # The TOML example in the docstring of cladewise.config.simulation must stay valid.
+    import cladewise.config.simulation as mod
 
     block = mod.__doc__.split("SPEC is a TOML file::\n\n")[1].split("\nOutput folder")[0]
     (tmp_path / "spec.toml").write_text("\n".join(line[4:] for line in block.splitlines()))
