@@ -446,7 +446,7 @@ def build_model(
         )
 
     summary_vars = [v for v in (
-        "evo_corr", "evo_slope", "evo_rate", "coef", "species_corr", "phylo_share",
+        "evo_corr", "evo_slope", "evo_rate", "coef", "intercept_at_mean", "species_corr", "phylo_share",
         "lambda", "alpha", "half_life", "kappa", "delta", "rate_change", "root_mean",
         "within_sd",
     ) if v in model.named_vars]
@@ -597,33 +597,65 @@ def _regression_data(data: ModelData, spec: ModelSpec):
 
 
 def _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors):
+    """Coefficients sampled on centred, scaled predictors; reported on the user's scale.
+
+    Each non-intercept column x_j enters as z_j = (x_j - m_j) / s_j (mean and sd over
+    the species used). With an intercept this is an exact reparametrisation of the
+    same likelihood, and the intercept sampled is the response at the predictors'
+    means, which is nearly uncorrelated with the slopes; priors are placed on that
+    scale. Reported: ``coef`` (intercept at the predictors' zero, slopes per unit x)
+    and ``intercept_at_mean`` (the response at the predictors' means).
+    """
     coef_scale = pri.get("coef_scale", 2.5)
     obs = observed[:, 0]
     p = len(predictors)
+    has_icpt = "Intercept" in predictors
+    i0 = predictors.index("Intercept") if has_icpt else -1
+    slope = np.array([j != i0 for j in range(p)])
+    centre = np.zeros(p)
+    scale = np.ones(p)
+    for j in np.flatnonzero(slope):
+        col = X[obs, j]
+        # without an intercept, centring would change the model: only scale then
+        centre[j] = float(np.mean(col)) if has_icpt else 0.0
+        scale[j] = float(np.std(col, ddof=1)) if col.size > 1 else 1.0
+        if not scale[j] > 0:
+            scale[j] = 1.0
     if coef_scale == "flat":
-        beta = pm.Flat("coef", dims="term")
+        b_z = pm.Flat("coef_z", shape=p)
         priors.append(PriorInfo("coef", "flat (improper)", "requested in the spec"))
     else:
-        loc = np.zeros(p)
-        sd = np.zeros(p)
-        for j, name in enumerate(predictors):
-            if name == "Intercept":
-                loc[j], sd[j] = ymean, 5.0 * ysd
-            else:
-                xsd = float(np.std(X[obs, j], ddof=1))
-                sd[j] = float(coef_scale) * ysd / xsd
-        beta = pm.Normal("coef", mu=loc, sigma=sd, dims="term")
-        priors.append(PriorInfo("coef", "Normal(0, " + ", ".join(f"{s:.3g}" for s in sd) + ") (intercept centred on mean y)",
-                                f"{coef_scale} x sd(y)/sd(x) per slope (common practice for weakly informative priors)"))
-    scale = 2.0 * float(pri.get("rate_scale", 1.0)) * ysd / math.sqrt(tbar)
-    sigma = pm.HalfNormal("evo_sd", sigma=scale)
-    priors.append(PriorInfo("evo_sd (sqrt of residual rate)", f"HalfNormal({scale:.3g})",
+        loc = np.where(slope, 0.0, ymean)
+        sd = np.where(slope, float(coef_scale) * ysd, 5.0 * ysd)
+        b_z = pm.Normal("coef_z", mu=loc, sigma=sd, shape=p)
+        user_sd = sd / scale
+        txt = ", ".join(f"{predictors[j]}: Normal(0, {user_sd[j]:.3g})" for j in np.flatnonzero(slope))
+        if has_icpt:
+            txt = f"intercept at the predictors' means: Normal({ymean:.3g}, {5.0 * ysd:.3g})" + (f"; {txt}" if txt else "")
+        priors.append(PriorInfo(
+            "coef", txt,
+            f"slopes {coef_scale} x sd(y)/sd(x) (common practice for weakly informative priors); "
+            "predictors are centred and scaled inside the model so the intercept prior does not pull the slopes"))
+    b_user = b_z / scale
+    if has_icpt:
+        at_mean = b_z[i0]
+        pm.Deterministic("intercept_at_mean", at_mean)
+        icpt = at_mean - pt.sum(b_user * centre)
+        beta = pt.set_subtensor(b_user[i0], icpt)
+    else:
+        beta = b_user
+    pm.Deterministic("coef", beta, dims="term")
+    scale_r = 2.0 * float(pri.get("rate_scale", 1.0)) * ysd / math.sqrt(tbar)
+    sigma = pm.HalfNormal("evo_sd", sigma=scale_r)
+    priors.append(PriorInfo("evo_sd (sqrt of residual rate)", f"HalfNormal({scale_r:.3g})",
                             "2 x sd(y) / sqrt(mean root-to-tip length)"))
     R = pt.reshape(sigma**2, (1, 1))
     pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
     y_d = pm.Data("obs_values", np.where(observed, y, 0.0))
     X_d = pm.Data("design", X)
-    resid = y_d - pt.dot(X_d, beta)[:, None]
+    # centred design from the data container, so swapped designs stay exact
+    Z = (X_d - centre[None, :]) / scale[None, :]
+    resid = y_d - pt.dot(Z, b_z)[:, None]
     resid = pt.where(observed, resid, 0.0)
     return R, pt.zeros(1), resid
 
