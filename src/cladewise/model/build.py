@@ -75,13 +75,13 @@ MEASUREMENT_ERROR = ("none", "se", "specimens")
 
 #: prior overrides accepted in ``[model.priors]`` / ``ModelSpec.priors``
 PRIOR_KEYS: dict[str, str] = {
-    "rate_scale": "multiplier on the data-scaled half-normal scale of each sqrt-rate (default 1)",
+    "rate_scale": "multiplier on the half-normal scale (2 trait sds) of each trait's tip sd (default 1)",
     "root_sd": "sd of the normal prior on root means, in trait sd units (default 5)",
     "lkj_eta": "LKJ shape of the evolutionary correlation matrix (default 1: uniform)",
     "coef_scale": "sd of normal priors on regression slopes in units sd(y)/sd(x) (default 2.5), or 'flat'",
     "lambda_beta": "[a, b] of a Beta prior on Pagel's lambda (default [1, 1]: uniform)",
     "alpha_scale": "half-normal sd of OU alpha, in units of 1/tree height (default 3)",
-    "kappa_sd": "sd of a log-normal prior on kappa centred on 1 (default 0.5)",
+    "kappa_max": "upper end of the uniform prior on kappa (default 1.5)",
     "delta_sd": "sd of a log-normal prior on delta centred on 1 (default 0.5)",
     "rate_change_scale": "sd of the normal prior on the early-burst rate change, per tree height (default 3)",
     "species_scale": "multiplier on the half-normal scale of species-level sds (default 1)",
@@ -423,9 +423,9 @@ def build_model(
         # --- rates and the response/trait means
         if spec.kind == "regression":
             ymean, ysd = _scale_facts(y[observed[:, 0], 0])
-            R, mu, y_t = _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors)
+            R, mu, y_t = _regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors)
         else:
-            R, mu = _rate_terms(spec, y, observed, traits, tbar, pri, priors)
+            R, mu = _rate_terms(spec, y, observed, traits, t_mean, pri, priors)
             y_t = pm.Data("obs_values", np.where(observed, y, 0.0))
 
         # --- species-level covariance
@@ -488,9 +488,14 @@ def _evolution_parameters(spec: ModelSpec, pri: dict, height: float, priors: lis
                                 "scale 3 / tree height: half-lives shorter than ~0.1 tree heights are unlikely a priori"))
         return {"alpha": alpha}
     if model == "kappa":
-        s = float(pri.get("kappa_sd", 0.5))
-        priors.append(PriorInfo("kappa", f"LogNormal(0, {s:g})", "centred on kappa = 1 (Brownian motion)"))
-        return {"kappa": pm.LogNormal("kappa", mu=0.0, sigma=s)}
+        top = float(pri.get("kappa_max", 1.5))
+        if not top > 1.0:
+            raise InputError(f"[model.priors] kappa_max = {top:g} must be above 1 so that Brownian motion "
+                             "(kappa = 1) stays inside the prior; 1.5 is the default")
+        priors.append(PriorInfo("kappa", f"Uniform(0, {top:g})",
+                                "even over (0, 1] and a little above: both limits, change at speciation "
+                                "(kappa near 0) and gradual change (kappa = 1), can be found"))
+        return {"kappa": pm.Uniform("kappa", lower=np.float64(0.0), upper=np.float64(top))}
     if model == "delta":
         s = float(pri.get("delta_sd", 0.5))
         priors.append(PriorInfo("delta", f"LogNormal(0, {s:g})", "centred on delta = 1 (Brownian motion)"))
@@ -503,35 +508,45 @@ def _evolution_parameters(spec: ModelSpec, pri: dict, height: float, priors: lis
     raise AssertionError(model)  # pragma: no cover
 
 
-def _rate_terms(spec, y, observed, traits, tbar, pri, priors):
+def _rate_terms(spec, y, observed, traits, t_mean, pri, priors):
+    """Rates through the sd of a species value along the tree (the tip sd).
+
+    The prior sits on ``tip_sd_j = sqrt(R_jj t)``, t the mean root-to-tip variance of
+    the *transformed* tree at the current parameters (``t_mean``), which the data
+    inform directly; the rate is ``tip_sd^2 / t``. Under OU with large alpha, small
+    kappa or a strong early burst, t changes by orders of magnitude, and a prior on
+    the rate itself would put the needed value in its tail.
+    """
     k = len(traits)
     means, sds = zip(*(_scale_facts(y[observed[:, j], j]) for j in range(k)))
     means, sds = np.array(means), np.array(sds)
-    # BM over a mean path length t gives variance R_jj t, so sqrt-rates near sd/sqrt(t).
-    scales = 2.0 * float(pri.get("rate_scale", 1.0)) * sds / math.sqrt(tbar)
+    scales = 2.0 * float(pri.get("rate_scale", 1.0)) * sds
     root_sd = float(pri.get("root_sd", 5.0)) * sds
     mu = pm.Normal("root_mean", mu=means, sigma=root_sd, dims="trait")
     priors.append(PriorInfo("root_mean", "Normal(trait mean, " + ", ".join(f"{s:.3g}" for s in root_sd) + ")",
                             "5 trait sds around the observed mean"))
     scale_txt = ", ".join(f"{s:.3g}" for s in scales)
+    why = ("2 x trait sd; the rate is tip_sd^2 / (mean root-to-tip variance of the transformed tree), "
+           "so the prior follows the evolution model's parameters")
+    inv_sqrt_t = 1.0 / pt.sqrt(t_mean)
     if spec.kind == "independent":
-        sigma = pm.HalfNormal("evo_sd", sigma=scales, dims="trait")
+        tip_sd = pm.HalfNormal("tip_sd", sigma=scales, dims="trait")
+        sigma = tip_sd * inv_sqrt_t
         R = pt.diag(sigma**2)
-        priors.append(PriorInfo("evo_sd (sqrt of rate)", f"HalfNormal({scale_txt})",
-                                "2 x trait sd / sqrt(mean root-to-tip length)"))
+        priors.append(PriorInfo("tip_sd (sqrt of rate x tree variance)", f"HalfNormal({scale_txt})", why))
     else:
         eta = float(pri.get("lkj_eta", 1.0))
-        chol, corr, sigma = pm.LKJCholeskyCov(
-            "rate_chol", n=k, eta=eta, sd_dist=pm.HalfNormal.dist(sigma=scales, shape=k), compute_corr=True
+        tip_chol, corr, _ = pm.LKJCholeskyCov(
+            "tip_chol", n=k, eta=eta, sd_dist=pm.HalfNormal.dist(sigma=scales, shape=k), compute_corr=True
         )
+        chol = tip_chol * inv_sqrt_t
         R = pt.dot(chol, chol.T)
         pm.Deterministic("evo_corr", corr, dims=("trait", "trait_"))
         # slope of the row trait on the column trait: R_yx / R_xx
         pm.Deterministic("evo_slope", R / pt.diag(R)[None, :], dims=("trait", "trait_"))
         priors.append(PriorInfo("evolutionary correlation matrix", f"LKJ(eta={eta:g})",
                                 "eta = 1 is uniform over correlation matrices"))
-        priors.append(PriorInfo("sqrt of each rate", f"HalfNormal({scale_txt})",
-                                "2 x trait sd / sqrt(mean root-to-tip length)"))
+        priors.append(PriorInfo("tip sd of each trait (sqrt of rate x tree variance)", f"HalfNormal({scale_txt})", why))
     pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
     return R, mu
 
@@ -596,7 +611,7 @@ def _regression_data(data: ModelData, spec: ModelSpec):
     return yv, observed, [response], X, predictors, [err_col]
 
 
-def _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors):
+def _regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors):
     """Coefficients sampled on centred, scaled predictors; reported on the user's scale.
 
     Each non-intercept column x_j enters as z_j = (x_j - m_j) / s_j (mean and sd over
@@ -645,10 +660,12 @@ def _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors)
     else:
         beta = b_user
     pm.Deterministic("coef", beta, dims="term")
-    scale_r = 2.0 * float(pri.get("rate_scale", 1.0)) * ysd / math.sqrt(tbar)
-    sigma = pm.HalfNormal("evo_sd", sigma=scale_r)
-    priors.append(PriorInfo("evo_sd (sqrt of residual rate)", f"HalfNormal({scale_r:.3g})",
-                            "2 x sd(y) / sqrt(mean root-to-tip length)"))
+    scale_r = 2.0 * float(pri.get("rate_scale", 1.0)) * ysd
+    tip_sd = pm.HalfNormal("tip_sd", sigma=scale_r)
+    sigma = tip_sd / pt.sqrt(t_mean)
+    priors.append(PriorInfo("tip_sd (sqrt of residual rate x tree variance)", f"HalfNormal({scale_r:.3g})",
+                            "2 x sd(y); the residual rate is tip_sd^2 / (mean root-to-tip variance of the "
+                            "transformed tree)"))
     R = pt.reshape(sigma**2, (1, 1))
     pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
     y_d = pm.Data("obs_values", np.where(observed, y, 0.0))
