@@ -114,16 +114,16 @@ def test_conditionals_correlated_bm_with_se_and_missing_match_dense_conditioning
     data = ModelData(tree, pd.DataFrame(y, index=species, columns=["a", "b"]),
                      se=pd.DataFrame(se, index=species, columns=["a", "b"]))
     built = build_model(data, ModelSpec(kind="correlated", traits=["a", "b"], measurement_error="se"))
+    # PyMC packs the lower-triangular Cholesky factor row by row: [L00, L10, L11] (from memory;
+    # the assertion on R below checks it)
     L = np.array([[1.3, 0.0], [-0.8, 0.6]])
     mu = np.array([0.4, -0.2])
-    R = L @ L.T
-    sd = np.sqrt(np.diag(R))
-    corr = R[0, 1] / (sd[0] * sd[1])
-    # sampled: tip sds sqrt(R_jj t), t the mean root-to-tip length, and (corr + 1) / 2
+    # the sampled factor is that of the tip covariance R t, t the mean root-to-tip length
     t = float(np.mean(np.diag(_shared_path_cov(tree))))
-    point = {"root_mean": mu, "tip_sd": np.sqrt(t) * sd, "evo_corr_partial": np.array([(corr + 1) / 2])}
-    idata = _one_draw(point)
-    engine = built.engine_function()(point)
+    packed = np.sqrt(t) * np.array([L[0, 0], L[1, 0], L[1, 1]])
+    idata = _one_draw({"root_mean": mu, "tip_chol": packed})
+    R = L @ L.T
+    engine = built.engine_function()({"root_mean": mu, "tip_chol": packed})
     np.testing.assert_allclose(engine["R"], R, rtol=1e-12)
 
     observed = np.isfinite(y)

@@ -81,14 +81,16 @@ def test_rate_is_tip_variance_over_mean_ou_tip_variance(kind):
     tip_sd = np.array([0.7, 1.3])
     # evaluate on the free random variables themselves (no sampler transforms)
     fn = pytensor.function(m.free_RVs, m["evo_rate"], on_unused_input="ignore")
-    # neutral values (0.5 is the middle of every (0, 1) parameter, e.g. partial correlations)
-    point = {rv.name: np.full(rv.type.shape, 0.5) if None not in rv.type.shape else None for rv in m.free_RVs}
-    if kind in ("correlated", "independent"):
+    point = {rv.name: np.zeros(rv.type.shape) if None not in rv.type.shape else None for rv in m.free_RVs}
+    if kind == "correlated":
+        # packed lower-triangular factor [L00, L10, L11], zero off-diagonal: tip sds on the diagonal
+        point["tip_chol"] = np.array([tip_sd[0], 0.0, tip_sd[1]])
+    elif kind == "independent":
         point["tip_sd"] = tip_sd
     else:
         tip_sd = tip_sd[:1]
         point["tip_sd"] = np.asarray(tip_sd[0])
-    point = {k: (v if v is not None else np.full(2, 0.5)) for k, v in point.items()}
+    point = {k: (v if v is not None else np.zeros(2)) for k, v in point.items()}
     rate = fn(*[point[rv.name] for rv in m.free_RVs])
     v_ii = (1 - np.exp(-2 * a * T)) / (2 * a)
     np.testing.assert_allclose(rate, tip_sd**2 / v_ii, rtol=1e-10)

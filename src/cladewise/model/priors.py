@@ -40,7 +40,6 @@ __all__ = [
     "scale_facts",
     "evolution_parameters",
     "rate_terms",
-    "lkj_corr_cholesky",
     "species_terms",
     "regression_terms",
 ]
@@ -157,13 +156,15 @@ def rate_terms(spec, y, observed, traits, t_mean, pri, priors):
         priors.append(PriorInfo("tip_sd (sqrt of rate x tree variance)", f"HalfNormal({scale_txt})", why))
     else:
         eta = float(pri.get("lkj_eta", 1.0))
-        tip_sd = pm.HalfNormal("tip_sd", sigma=scales, dims="trait")
-        corr_chol = lkj_corr_cholesky("evo_corr_partial", k, eta)
-        # sds and correlations sampled apart: the correlation coordinates keep their
-        # scale when a rate is near zero (a Cholesky factor of R would form a funnel)
-        chol = (tip_sd * inv_sqrt_t)[:, None] * corr_chol
+        # Cholesky factor of the tip covariance. Sampling sds and partial correlations
+        # apart was measured in benchmarks/bench_calibration.py and diverged as often or
+        # more (one chain stuck near correlation 1), so the factor stays.
+        tip_chol, corr, _ = pm.LKJCholeskyCov(
+            "tip_chol", n=k, eta=eta, sd_dist=pm.HalfNormal.dist(sigma=scales, shape=k), compute_corr=True
+        )
+        chol = tip_chol * inv_sqrt_t
         R = pt.dot(chol, chol.T)
-        pm.Deterministic("evo_corr", pt.dot(corr_chol, corr_chol.T), dims=("trait", "trait_"))
+        pm.Deterministic("evo_corr", corr, dims=("trait", "trait_"))
         # slope of the row trait on the column trait: R_yx / R_xx
         pm.Deterministic("evo_slope", R / pt.diag(R)[None, :], dims=("trait", "trait_"))
         priors.append(PriorInfo("evolutionary correlation matrix", f"LKJ(eta={eta:g})",
@@ -171,35 +172,6 @@ def rate_terms(spec, y, observed, traits, t_mean, pri, priors):
         priors.append(PriorInfo("tip sd of each trait (sqrt of rate x tree variance)", f"HalfNormal({scale_txt})", why))
     pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
     return R, mu
-
-
-def lkj_corr_cholesky(name: str, k: int, eta: float) -> Any:
-    """Cholesky factor of a correlation matrix with an LKJ(eta) prior, from partial correlations.
-
-    The k(k-1)/2 canonical partial correlations of a C-vine are independent, the one
-    of level j (variables i and j given the j-1 before them) with ``(z + 1) / 2 ~
-    Beta(b_j, b_j)``, ``b_j = eta + (k - 1 - j) / 2``; the correlation matrix they
-    build has density proportional to ``det(Omega)^(eta - 1)`` (Lewandowski, Kurowicka
-    & Joe 2009, J. Multivar. Anal. 100:1989-2001, section 3.2). The factor is built
-    row by row: ``L_ij = z_ij sqrt(1 - sum_{l<j} L_il^2)``. The coordinates do not
-    depend on the rates, and every value gives a valid correlation matrix.
-    """
-    levels = np.array([j + 1 for i in range(1, k) for j in range(i)], dtype=float)
-    b = eta + (k - 1 - levels) / 2.0
-    u = pm.Beta(name, alpha=b, beta=b, shape=len(levels))
-    z = 2.0 * u - 1.0
-    rows = [pt.concatenate([pt.ones(1), pt.zeros(k - 1)])]
-    pos = 0
-    for i in range(1, k):
-        entries, rest = [], pt.as_tensor_variable(np.float64(1.0))
-        for _ in range(i):
-            v = z[pos] * pt.sqrt(rest)
-            entries.append(v)
-            rest = rest - v**2
-            pos += 1
-        entries.append(pt.sqrt(rest))
-        rows.append(pt.concatenate([pt.stack(entries), pt.zeros(k - 1 - i)]))
-    return pt.stack(rows)
 
 
 def species_terms(y, observed, traits, pri, priors):
