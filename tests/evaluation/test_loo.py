@@ -118,9 +118,12 @@ def test_conditionals_correlated_bm_with_se_and_missing_match_dense_conditioning
     # the assertion on R below checks it)
     L = np.array([[1.3, 0.0], [-0.8, 0.6]])
     mu = np.array([0.4, -0.2])
-    idata = _one_draw({"root_mean": mu, "rate_chol": np.array([L[0, 0], L[1, 0], L[1, 1]])})
+    # the sampled factor is that of the tip covariance R t, t the mean root-to-tip length
+    t = float(np.mean(np.diag(_shared_path_cov(tree))))
+    packed = np.sqrt(t) * np.array([L[0, 0], L[1, 0], L[1, 1]])
+    idata = _one_draw({"root_mean": mu, "tip_chol": packed})
     R = L @ L.T
-    engine = built.engine_function()({"root_mean": mu, "rate_chol": np.array([L[0, 0], L[1, 0], L[1, 1]])})
+    engine = built.engine_function()({"root_mean": mu, "tip_chol": packed})
     np.testing.assert_allclose(engine["R"], R, rtol=1e-12)
 
     observed = np.isfinite(y)
@@ -140,9 +143,16 @@ def test_conditionals_lambda_regression_are_response_given_predictors():
     species = list(tree.tip_names)
     data = ModelData(tree, pd.DataFrame({"y": yv, "x": x}, index=species))
     built = build_model(data, ModelSpec(kind="regression", formula="y ~ x", evolution="lambda"))
-    lam, beta, sd = 0.6, np.array([0.8, 0.45]), 0.7
-    point = {"lambda": np.array(lam), "coef": beta, "evo_sd": np.array(sd)}
+    lam = 0.6
+    # sampled on centred predictors; the reported coefficients and rate come from the model
+    point = {"lambda": np.array(lam), "coef_z": np.array([1.1, 0.3]), "tip_sd": np.array(0.9)}
     got = pointwise_loglik(built, _one_draw(point)).values[0, 0]
+    import pytensor
+
+    m = built.model
+    beta, rate = pytensor.function(m.free_RVs, [m["coef"], m["evo_rate"]], on_unused_input="ignore")(
+        *[point[rv.name] for rv in m.free_RVs])
+    sd = float(np.sqrt(rate[0]))
 
     C = _shared_path_cov(tree)
     C_lam = lam * C + (1 - lam) * np.diag(np.diag(C))  # Pagel 1999

@@ -46,7 +46,6 @@ from __future__ import annotations
 
 import argparse
 import sys
-from pathlib import Path
 
 from cladewise.cli.common import Command
 from cladewise.config.power import load_power_spec

@@ -100,7 +100,7 @@ DATA = Table("data", {
 #: ``[model.priors]``: overrides of the default priors (descriptions are shown
 #: by the model builder as ``cladewise.model.build.PRIOR_KEYS``)
 MODEL_PRIORS = Table("model.priors", {
-    "rate_scale": Key("float", "multiplier on the data-scaled half-normal scale of each sqrt-rate (default 1)",
+    "rate_scale": Key("float", "multiplier on the half-normal scale (2 trait sds) of each trait's tip sd (default 1)",
                       min=0, min_open=True, example="1.0"),
     "root_sd": Key("float", "sd of the normal prior on root means, in trait sd units (default 5)",
                    min=0, min_open=True, example="5.0"),
@@ -112,8 +112,8 @@ MODEL_PRIORS = Table("model.priors", {
                        min=0, min_open=True, sizes=(2,), example="[1.0, 1.0]"),
     "alpha_scale": Key("float", "half-normal sd of OU alpha, in units of 1/tree height (default 3)",
                        min=0, min_open=True, example="3.0"),
-    "kappa_sd": Key("float", "sd of a log-normal prior on kappa centred on 1 (default 0.5)",
-                    min=0, min_open=True, example="0.5"),
+    "kappa_max": Key("float", "upper end of the uniform prior on kappa (default 1.5; must exceed 1 so "
+                     "that Brownian motion, kappa = 1, is inside)", min=1, min_open=True, example="1.5"),
     "delta_sd": Key("float", "sd of a log-normal prior on delta centred on 1 (default 0.5)",
                     min=0, min_open=True, example="0.5"),
     "rate_change_scale": Key("float", "sd of the normal prior on the early-burst rate change, per tree "

@@ -320,8 +320,54 @@ def _result_from_elpd(elpd_data: Any, unit_names: Sequence[str], unit: str, valu
     )
 
 
+def _psis_over_trees(ll: xr.DataArray, posterior: xr.Dataset | None) -> tuple[Any, int]:
+    """PSIS-LOO per tree, combined per species as the equal-weight mixture.
+
+    Draws pooled over T trees come from the mixture posterior ``(1/T) sum_t p_t(theta|y)``.
+    Its leave-one-out predictive density is ``p(y_i | y_-i) = (1/T) sum_t p_t(y_i | y_-i)``
+    when every tree keeps its equal weight; PSIS on the pooled draws would instead
+    estimate the harmonic mean over trees, which is smaller and gives no warning. Each
+    tree's term is estimated by PSIS on that tree's draws, and the terms are combined
+    by log-mean-exp. Pareto k is the largest over trees (the least reliable term).
+
+    Returns the ArviZ ELPD object (pointwise ``loo_i`` and ``pareto_k`` replaced) and
+    the number of trees (1 when the draws carry no ``tree`` coordinate).
+    """
+    trees = np.asarray(ll.coords["tree"].values) if "tree" in ll.coords else None
+    if trees is None or len(np.unique(trees)) < 2:
+        return _psis(ll, posterior, "species"), 1
+    loo_t, k_t, parts = [], [], []
+    for t in np.unique(trees):
+        chains = ll["chain"].values[trees == t]
+        sub_post = posterior.sel(chain=chains) if posterior is not None and "chain" in posterior.dims else None
+        ed = _psis(ll.sel(chain=chains), sub_post, "species")
+        parts.append(ed)
+        loo_t.append(np.asarray(ed.loo_i, dtype=float))
+        k_t.append(np.asarray(ed.pareto_k, dtype=float))
+    n_t = len(parts)
+    loo_i = logsumexp(np.stack(loo_t), axis=0) - math.log(n_t)
+    k = np.max(np.stack(k_t), axis=0)
+    vals = ll.values.reshape(-1, ll.shape[-1])
+    lppd_i = logsumexp(vals, axis=0) - math.log(vals.shape[0])
+    ed = parts[0].copy()
+    coords = {"species": ll["species"].values}
+    ed["loo_i"] = xr.DataArray(loo_i, dims=("species",), coords=coords, name="loo_i")
+    ed["pareto_k"] = xr.DataArray(k, dims=("species",), coords=coords, name="pareto_k")
+    ed["elpd_loo"] = float(loo_i.sum())
+    ed["se"] = float(math.sqrt(loo_i.size * np.var(loo_i)))
+    ed["p_loo"] = float(lppd_i.sum() - loo_i.sum())
+    ed["n_samples"] = int(vals.shape[0])
+    ed["warning"] = bool((k > ed["good_k"]).any())
+    return ed, n_t
+
+
 def loo_species(fit: Any) -> LooResult:
     """PSIS-LOO over species from a fit's stored leave-one-species-out conditionals.
+
+    Species without any observed value have nothing to predict and are left out
+    (they neither add to the ELPD nor count in its standard error). For a fit pooled
+    over a tree sample the estimate is that of the equal-weight mixture over trees:
+    PSIS per tree, combined per species by log-mean-exp (:func:`_psis_over_trees`).
 
     Parameters
     ----------
@@ -335,15 +381,26 @@ def loo_species(fit: Any) -> LooResult:
     """
     view = _view(fit)
     ll = _loglik_matrix(view)
-    elpd_data = _psis(ll, view.idata.posterior if "posterior" in view.idata.groups() else None, "species")
     obs = _observed(view)
+    names = [str(s) for s in ll["species"].values]
+    ll = ll.assign_coords(species=names)
     values = pd.DataFrame(obs.values, index=[str(s) for s in obs["species"].values],
                           columns=[str(t) for t in obs["trait"].values])
-    values = values.reindex([str(s) for s in ll["species"].values])
+    values = values.reindex(names)
     notes = []
     empty = values.isna().all(axis=1)
     if empty.any():
-        notes.append(f"{int(empty.sum())} species without observed values add 0 to the ELPD")
+        ll = ll.sel(species=[s for s, e in zip(names, empty) if not e])
+        values = values.loc[~empty]
+        notes.append(f"{int(empty.sum())} species without observed values are left out of LOO "
+                     "(nothing to predict)")
+    posterior = view.idata.posterior if "posterior" in view.idata.groups() else None
+    elpd_data, n_trees = _psis_over_trees(ll, posterior)
+    if n_trees > 1:
+        notes.append(
+            f"pooled over {n_trees} trees: each species' predictive density is the mean over trees of the "
+            "per-tree PSIS-LOO densities (the equal-weight mixture); Pareto k is the largest over trees"
+        )
     return _result_from_elpd(elpd_data, [str(s) for s in ll["species"].values], "species", values, notes=notes)
 
 
@@ -543,7 +600,9 @@ def compare_fits(
     _refuse_repeated_fit(views)
     obs = [_observed(v) for v in views]
     kind, notes = _check_comparable(views, obs)
-    order = [str(s) for s in obs[0]["species"].values]
+    # species with no observed value are left out of LOO (same cells in every fit)
+    has_obs = np.isfinite(np.asarray(obs[0].values, float)).any(axis=1)
+    order = [str(s) for s, h in zip(obs[0]["species"].values, has_obs) if h]
     given = dict(loo or {})
     results: dict[str, LooResult] = {}
     for v in views:

@@ -32,13 +32,12 @@ pooled across species on the log scale; each species' sample variance s^2 from n
 specimens adds the likelihood term ``(n-1) s^2 / sigma_w^2 ~ chi^2(n-1)``, and the
 error variance of the species mean is ``sigma_w^2 / n``).
 
-Default priors are weakly informative and scaled to the data (see :data:`PRIOR_KEYS`
+Default priors are weakly informative and scaled to the data (see :mod:`cladewise.model.priors`
 and :func:`build_model`); every prior used is listed in ``BuiltModel.priors``.
 """
 
 from __future__ import annotations
 
-import math
 import re
 from dataclasses import dataclass, field, asdict
 from typing import Any
@@ -49,7 +48,7 @@ import pymc as pm
 import pytensor
 import pytensor.tensor as pt
 
-from cladewise.config.analysis import KINDS, MEASUREMENT_ERROR, MODEL, MODEL_PRIORS
+from cladewise.config.analysis import KINDS, MEASUREMENT_ERROR, MODEL
 from cladewise.config.tables import read_table
 from cladewise.errors import InputError
 from cladewise.model.evolution import (
@@ -61,6 +60,16 @@ from cladewise.model.evolution import (
 )
 from cladewise.data.trees import FlatTree
 from cladewise.model.quantities import summary_names
+from cladewise.model.priors import (
+    PARAMETER_NAMES,
+    PRIOR_KEYS,
+    PriorInfo,
+    evolution_parameters,
+    rate_terms,
+    regression_terms,
+    scale_facts,
+    species_terms,
+)
 
 __all__ = [
     "ModelData",
@@ -73,10 +82,6 @@ __all__ = [
     "MEASUREMENT_ERROR",
     "PRIOR_KEYS",
 ]
-
-#: prior overrides accepted in ``[model.priors]`` / ``ModelSpec.priors`` (declared,
-#: with their ranges, in ``cladewise.config.analysis.MODEL_PRIORS``)
-PRIOR_KEYS: dict[str, str] = {name: key.help for name, key in MODEL_PRIORS.keys.items()}
 
 
 # --------------------------------------------------------------------------- data
@@ -189,7 +194,7 @@ class ModelSpec:
         allowed = {"lambda": "lambda", "lam": "lambda", "alpha": "alpha", "kappa": "kappa",
                    "delta": "delta", "rate_change": "rate_change"}
         for key, value in self.fixed.items():
-            if allowed.get(key) != _PUBLIC_NAME.get(MODELS[self.evolution][0] if MODELS[self.evolution] else ""):
+            if allowed.get(key) != PARAMETER_NAMES.get(MODELS[self.evolution][0] if MODELS[self.evolution] else ""):
                 raise InputError(
                     f"[model.fixed] {key!r} is not a parameter of the {self.evolution!r} evolution model"
                 )
@@ -203,15 +208,6 @@ class ModelSpec:
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
-
-
-@dataclass
-class PriorInfo:
-    """One prior, in words, for the printed results."""
-
-    parameter: str
-    distribution: str
-    reason: str
 
 
 @dataclass
@@ -319,16 +315,6 @@ def _likelihood(tree: FlatTree, parent, lengths, y, observed, R, E, err_var, mu,
     return pm.logp(pm.MvNormal.dist(mu=mean, cov=cov), value)
 
 
-def _scale_facts(values: np.ndarray) -> tuple[float, float]:
-    v = values[np.isfinite(values)]
-    if v.size < 2:
-        raise InputError("a trait needs at least two observed species")
-    sd = float(np.std(v, ddof=1))
-    if not sd > 0:
-        raise InputError("a trait has no variance across species (all values equal); it cannot be modelled")
-    return float(np.mean(v)), sd
-
-
 # --------------------------------------------------------------------------- build
 def build_model(
     data: ModelData, spec: ModelSpec, likelihood: str = "tree"
@@ -396,21 +382,21 @@ def build_model(
         tree_data["tip_weights"] = "tree_tip_weights"
 
         # --- evolution model parameters -> branch lengths
-        evo = _evolution_parameters(spec, pri, height, priors)
+        evo = evolution_parameters(spec, pri, height, priors)
         lengths = lengths_from_arrays(tensors, spec.evolution, ou_root=spec.ou_root, **evo)
         t_mean = pt.dot(w_data, lengths)
 
         # --- rates and the response/trait means
         if spec.kind == "regression":
-            ymean, ysd = _scale_facts(y[observed[:, 0], 0])
-            R, mu, y_t = _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors)
+            ymean, ysd = scale_facts(y[observed[:, 0], 0])
+            R, mu, y_t = regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors)
         else:
-            R, mu = _rate_terms(spec, y, observed, traits, tbar, pri, priors)
+            R, mu = rate_terms(spec, y, observed, traits, t_mean, pri, priors)
             y_t = pm.Data("obs_values", np.where(observed, y, 0.0))
 
         # --- species-level covariance
         if spec.species_covariance:
-            E = _species_terms(y, observed, traits, pri, priors)
+            E = species_terms(y, observed, traits, pri, priors)
             share = pt.diag(R) * t_mean / (pt.diag(R) * t_mean + pt.diag(E))
             pm.Deterministic("phylo_share", share, dims="trait")
         else:
@@ -434,101 +420,6 @@ def build_model(
         tree_data=tree_data, likelihood=likelihood, notes=notes,
         predictors=predictors, design=X,
     )
-
-
-_PUBLIC_NAME = {"lam": "lambda", "alpha": "alpha", "kappa": "kappa", "delta": "delta",
-                "rate_change": "rate_change"}
-
-
-def _evolution_parameters(spec: ModelSpec, pri: dict, height: float, priors: list[PriorInfo]) -> dict:
-    model = spec.evolution
-    if model == "bm":
-        return {}
-    if spec.fixed:
-        (key, value), = spec.fixed.items()
-        inner = MODELS[model][0]
-        priors.append(PriorInfo(_PUBLIC_NAME[inner], f"fixed at {value:g}", "set in the spec"))
-        # data, not a constant: one compiled model can be re-run at other fixed values
-        fixed = pm.Data(f"fixed_{_PUBLIC_NAME[inner]}", np.asarray(float(value)))
-        return {inner: fixed}
-    if model == "lambda":
-        a, b = pri.get("lambda_beta", [1.0, 1.0])
-        lam = pm.Beta("lambda", alpha=float(a), beta=float(b))
-        priors.append(PriorInfo("lambda", f"Beta({a:g}, {b:g})", "Pagel's lambda lies in [0, 1]; uniform by default"))
-        return {"lam": lam}
-    if model == "ou":
-        s = float(pri.get("alpha_scale", 3.0)) / height
-        alpha = pm.HalfNormal("alpha", sigma=s)
-        pm.Deterministic("half_life", math.log(2.0) / alpha)
-        priors.append(PriorInfo("alpha", f"HalfNormal({s:.4g})",
-                                "scale 3 / tree height: half-lives shorter than ~0.1 tree heights are unlikely a priori"))
-        return {"alpha": alpha}
-    if model == "kappa":
-        s = float(pri.get("kappa_sd", 0.5))
-        priors.append(PriorInfo("kappa", f"LogNormal(0, {s:g})", "centred on kappa = 1 (Brownian motion)"))
-        return {"kappa": pm.LogNormal("kappa", mu=0.0, sigma=s)}
-    if model == "delta":
-        s = float(pri.get("delta_sd", 0.5))
-        priors.append(PriorInfo("delta", f"LogNormal(0, {s:g})", "centred on delta = 1 (Brownian motion)"))
-        return {"delta": pm.LogNormal("delta", mu=0.0, sigma=s)}
-    if model == "early_burst":
-        s = float(pri.get("rate_change_scale", 3.0)) / height
-        priors.append(PriorInfo("rate_change", f"Normal(0, {s:.4g})",
-                                "scale 3 / tree height: the rate may change about e^3-fold over the tree"))
-        return {"rate_change": pm.Normal("rate_change", 0.0, s)}
-    raise AssertionError(model)  # pragma: no cover
-
-
-def _rate_terms(spec, y, observed, traits, tbar, pri, priors):
-    k = len(traits)
-    means, sds = zip(*(_scale_facts(y[observed[:, j], j]) for j in range(k)))
-    means, sds = np.array(means), np.array(sds)
-    # BM over a mean path length t gives variance R_jj t, so sqrt-rates near sd/sqrt(t).
-    scales = 2.0 * float(pri.get("rate_scale", 1.0)) * sds / math.sqrt(tbar)
-    root_sd = float(pri.get("root_sd", 5.0)) * sds
-    mu = pm.Normal("root_mean", mu=means, sigma=root_sd, dims="trait")
-    priors.append(PriorInfo("root_mean", "Normal(trait mean, " + ", ".join(f"{s:.3g}" for s in root_sd) + ")",
-                            "5 trait sds around the observed mean"))
-    scale_txt = ", ".join(f"{s:.3g}" for s in scales)
-    if spec.kind == "independent":
-        sigma = pm.HalfNormal("evo_sd", sigma=scales, dims="trait")
-        R = pt.diag(sigma**2)
-        priors.append(PriorInfo("evo_sd (sqrt of rate)", f"HalfNormal({scale_txt})",
-                                "2 x trait sd / sqrt(mean root-to-tip length)"))
-    else:
-        eta = float(pri.get("lkj_eta", 1.0))
-        chol, corr, sigma = pm.LKJCholeskyCov(
-            "rate_chol", n=k, eta=eta, sd_dist=pm.HalfNormal.dist(sigma=scales, shape=k), compute_corr=True
-        )
-        R = pt.dot(chol, chol.T)
-        pm.Deterministic("evo_corr", corr, dims=("trait", "trait_"))
-        # slope of the row trait on the column trait: R_yx / R_xx
-        pm.Deterministic("evo_slope", R / pt.diag(R)[None, :], dims=("trait", "trait_"))
-        priors.append(PriorInfo("evolutionary correlation matrix", f"LKJ(eta={eta:g})",
-                                "eta = 1 is uniform over correlation matrices"))
-        priors.append(PriorInfo("sqrt of each rate", f"HalfNormal({scale_txt})",
-                                "2 x trait sd / sqrt(mean root-to-tip length)"))
-    pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
-    return R, mu
-
-
-def _species_terms(y, observed, traits, pri, priors):
-    k = len(traits)
-    sds = np.array([_scale_facts(y[observed[:, j], j])[1] for j in range(k)])
-    scales = float(pri.get("species_scale", 1.0)) * sds
-    if k == 1:
-        s = pm.HalfNormal("species_sd", sigma=scales, dims="trait")
-        E = pt.diag(s**2)
-    else:
-        cholE, corrE, _ = pm.LKJCholeskyCov(
-            "species_chol", n=k, eta=2.0, sd_dist=pm.HalfNormal.dist(sigma=scales, shape=k), compute_corr=True
-        )
-        E = pt.dot(cholE, cholE.T)
-        pm.Deterministic("species_corr", corrE, dims=("trait", "trait_"))
-        priors.append(PriorInfo("species-level correlation matrix", "LKJ(eta=2)", "mildly favours small residual correlations"))
-    priors.append(PriorInfo("species-level sds", "HalfNormal(" + ", ".join(f"{s:.3g}" for s in scales) + ")",
-                            "one trait sd"))
-    return E
 
 
 _FORMULA_HINT = 'a column name with spaces or dashes goes in backticks, e.g. formula = "y ~ `body mass`"'
@@ -579,38 +470,6 @@ def _regression_data(data: ModelData, spec: ModelSpec):
             raise InputError(f"predictor {p!r} has no variance among the species used; drop it from the formula")
     err_col = response if response in data.values.columns else None
     return yv, observed, [response], X, predictors, [err_col]
-
-
-def _regression_terms(y, observed, X, predictors, ymean, ysd, tbar, pri, priors):
-    coef_scale = pri.get("coef_scale", 2.5)
-    obs = observed[:, 0]
-    p = len(predictors)
-    if coef_scale == "flat":
-        beta = pm.Flat("coef", dims="term")
-        priors.append(PriorInfo("coef", "flat (improper)", "requested in the spec"))
-    else:
-        loc = np.zeros(p)
-        sd = np.zeros(p)
-        for j, name in enumerate(predictors):
-            if name == "Intercept":
-                loc[j], sd[j] = ymean, 5.0 * ysd
-            else:
-                xsd = float(np.std(X[obs, j], ddof=1))
-                sd[j] = float(coef_scale) * ysd / xsd
-        beta = pm.Normal("coef", mu=loc, sigma=sd, dims="term")
-        priors.append(PriorInfo("coef", "Normal(0, " + ", ".join(f"{s:.3g}" for s in sd) + ") (intercept centred on mean y)",
-                                f"{coef_scale} x sd(y)/sd(x) per slope (common practice for weakly informative priors)"))
-    scale = 2.0 * float(pri.get("rate_scale", 1.0)) * ysd / math.sqrt(tbar)
-    sigma = pm.HalfNormal("evo_sd", sigma=scale)
-    priors.append(PriorInfo("evo_sd (sqrt of residual rate)", f"HalfNormal({scale:.3g})",
-                            "2 x sd(y) / sqrt(mean root-to-tip length)"))
-    R = pt.reshape(sigma**2, (1, 1))
-    pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
-    y_d = pm.Data("obs_values", np.where(observed, y, 0.0))
-    X_d = pm.Data("design", X)
-    resid = y_d - pt.dot(X_d, beta)[:, None]
-    resid = pt.where(observed, resid, 0.0)
-    return R, pt.zeros(1), resid
 
 
 def _measurement_error(spec, data, cols, observed, priors, notes):

@@ -12,7 +12,8 @@ name            parameter     effect on the tree
 ``lambda``      ``lam``       internal branches (and root edge) times lambda; tip
                               branches stretched so root-to-tip distances stay
                               (Pagel 1999, Nature 401:877-884). Exact on any tree.
-``kappa``       ``kappa``     every branch raised to the power kappa (Pagel 1999).
+``kappa``       ``kappa``     every branch below the root raised to the power kappa
+                              (Pagel 1999).
 ``delta``       ``delta``     node heights h become T (h / T)^delta, T the tree
                               height, so the tree height is kept (Pagel 1999).
 ``early_burst`` ``rate_change`` rate at height s is exp(rate_change * s); negative
@@ -23,6 +24,12 @@ name            parameter     effect on the tree
                               trees only; see :func:`transformed_lengths`.
 ==============  ============  ====================================================
 
+Root edge. A branch above the root (the last entry of the lengths, often 0) is a
+stretch of Brownian motion shared by every species: every transform leaves it
+unchanged, so it adds its length to every entry of the covariance, except
+``lambda``, whose definition scales every shared (off-diagonal) entry, the root
+edge's share included, while keeping the diagonal.
+
 Ornstein-Uhlenbeck root treatment. With ``ou_root="fixed"`` (default) the root
 value equals the optimum, which is the root mean ``mu`` of the model; the tip
 covariance is ``R/(2 alpha) exp(-2 alpha (T - s_ij)) (1 - exp(-2 alpha s_ij))``
@@ -32,7 +39,10 @@ value is drawn from the stationary distribution, which adds a root edge of lengt
 ``R/(2 alpha) exp(-2 alpha (T - s_ij))`` (Hansen 1997; Butler & King 2004,
 Am. Nat. 164:683-695). On a non-ultrametric tree the OU covariance is not a
 Brownian motion on any tree; cladewise then measures time from the tallest tip,
-which is an approximation, and :func:`model_warnings` says so.
+which is an approximation, and :func:`model_warnings` says so. The exact covariance
+(Hansen 1997) is ``D C D`` with C the covariance of these lengths and ``D`` the
+per-tip scale of :func:`ou_tip_scale` (Ho & Ane 2014, Syst. Biol. 63:397-408); the
+likelihood does not use it yet, because the engine has no per-tip scale.
 """
 
 from __future__ import annotations
@@ -56,6 +66,7 @@ __all__ = [
     "transformed_lengths",
     "model_warnings",
     "check_model_name",
+    "ou_tip_scale",
 ]
 
 #: model name -> names of its parameters
@@ -244,9 +255,10 @@ def lengths_from_arrays(
 
     if model == "kappa":
         kappa = params["kappa"]
-        pos = length > 0
-        safe = xp.where(pos, length, 1.0)
-        return xp.where(pos, xp.exp(kappa * xp.log(safe)), 0.0)
+        pos = inner > 0
+        safe = xp.where(pos, inner, 1.0)
+        # the root edge stays as it is, as in every other transform (module docstring)
+        return xp.where(pos, xp.exp(kappa * xp.log(safe)), 0.0) + root_edge
 
     if model == "delta":
         delta = params["delta"]
@@ -278,3 +290,31 @@ def lengths_from_arrays(
         return out
 
     raise AssertionError(model)  # pragma: no cover
+
+
+def ou_tip_scale(arrays: dict[str, Any], alpha: Any) -> Any:
+    """Per-tip scale that makes the OU lengths exact on a non-ultrametric tree.
+
+    With d_i the root-to-tip distance of tip i and s_ij the shared path length, the
+    OU covariance with the root at the optimum is (Hansen 1997)
+    ``V_ij = exp(-alpha (d_i + d_j - 2 s_ij)) (1 - exp(-2 alpha s_ij)) / (2 alpha)``
+    (stationary root: without the last factor's ``- exp(...)`` term). It factors as
+    ``D_i C_ij D_j`` with C the covariance of :func:`lengths_from_arrays` for ``ou``
+    (node heights mapped to ``exp(-2 alpha (T - h)) / (2 alpha)``, T the tallest tip)
+    and ``D_i = exp(alpha (T - d_i))`` (Ho & Ane 2014, Syst. Biol. 63:397-408). On an
+    ultrametric tree D is 1.
+
+    Parameters
+    ----------
+    arrays : dict
+        From :func:`tree_arrays` (numpy or PyTensor).
+    alpha : float or TensorVariable
+
+    Returns
+    -------
+    ndarray or TensorVariable, shape (n_nodes,)
+        D for every node (tips first; the entries of internal nodes are not used).
+    """
+    xp = _backend(alpha, *arrays.values())
+    gap = xp.maximum(arrays["height"] - arrays["h_end"], 0.0)
+    return xp.exp(alpha * gap)

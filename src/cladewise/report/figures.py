@@ -319,13 +319,14 @@ def pareto_k_plot(view: FitView):
     """Pareto k of each species from PSIS-LOO; species above 0.7 labelled."""
     import warnings
 
-    import arviz as az
-
     if not view.has("log_likelihood"):
         raise Skip("the fit folder has no log-likelihood group, so LOO cannot be computed")
+    from cladewise.evaluation.loo import loo_species
+
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        loo = az.loo(view.idata, pointwise=True)
+        # per tree and mixed for fits pooled over trees; species without data left out
+        loo = loo_species(view.idata).elpd_data
     k = np.asarray(loo.pareto_k.values, dtype=float)
     sp = [str(s) for s in loo.pareto_k[loo.pareto_k.dims[0]].values] if loo.pareto_k.dims else view.species
     fig, ax = new_figure(6.4, 3.2)

@@ -28,10 +28,9 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
-from cladewise.config.simulation import load_simulation_spec
 from cladewise.errors import InputError
-from cladewise.inference.results import atomic_write, check_output_folder, write_marker
-from cladewise.model.evolution import check_model_name, model_warnings, transformed_lengths
+from cladewise.inference.results import atomic_write, check_output_folder
+from cladewise.model.evolution import check_model_name, transformed_lengths
 from cladewise.data.trees import FlatTree
 from cladewise.data.treefiles import format_newick
 from cladewise.model.simulate import (
