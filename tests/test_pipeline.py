@@ -162,24 +162,22 @@ def test_extreme_scales_never_reach_the_sampler(tmp_path, kw, words):
 
 
 def test_starting_point_check_names_the_term_and_cause(tmp_path, monkeypatch):
-    # 1e300 branch lengths: the tree likelihood overflows at the start. The scale
-    # check refuses them first; switched off here to reach the second line of
-    # defence, the log density and gradient at the starting point.
-    import cladewise.inference.startcheck as startcheck
-
+    # An early burst fixed at rate change -3000 per unit time shrinks every branch below
+    # the root to exp(-3000 t) ~ 0 (Harmon et al. 2010 transform), so with exact species
+    # means the tree covariance is singular and the log density is -inf at the start.
+    # (Extreme scales are refused earlier, by the readers; the rate prior on the tip sd
+    # makes the model itself invariant to the tree's units.)
     import nutpie
 
     compiled = []
-    import cladewise.data.treefiles as treefiles
-
-    monkeypatch.setattr(startcheck, "scale_problems", lambda built: [])
-    monkeypatch.setattr(treefiles, "check_scale", lambda tree, source: None)
     monkeypatch.setattr(nutpie, "compile_pymc_model", lambda *a, **k: compiled.append(1))
-    _write_data(tmp_path / "data", scale=1e300)
+    _write_data(tmp_path / "data", se=False)
+    model = ('kind = "correlated"\ntraits = ["a", "b"]\nevolution = "early_burst"\n'
+             "fixed = { rate_change = -3000.0 }")
     with pytest.raises(InputError) as err:
-        fit_from_spec(_spec(tmp_path), draws=10)
+        fit_from_spec(_spec(tmp_path, model=model), draws=10)
     msg = str(err.value)
-    assert "sampler cannot start" in msg and "tree_loglik" in msg and "rescale the tree" in msg
+    assert "sampler cannot start" in msg and "tree_loglik" in msg and "rate_change = -3000" in msg
     assert compiled == []  # refused before the sampler was compiled
 
 

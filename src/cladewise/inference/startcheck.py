@@ -56,6 +56,11 @@ def likely_causes(built: Any) -> list[str]:
         elif sd <= _SMALL * max(1.0, big):
             causes.append(f"trait {t!r} is (nearly) constant across species (sd {sd:.3g}): it carries no "
                           "information on evolution; leave it out or check the column")
+    fixed = dict(getattr(built.spec, "fixed", None) or {})
+    if fixed:
+        said = ", ".join(f"{k} = {v:g}" for k, v in fixed.items())
+        causes.append(f"[model] fixed sets {said}: at that value the transformed tree may have (nearly) zero "
+                      "or overflowing branch lengths; estimate the parameter or choose a milder value")
     if not causes:
         causes.append("no extreme branch length or trait value was found; check the [model.priors] "
                       "settings and the measurement-error columns for zeros or extreme values")
