@@ -231,7 +231,7 @@ def test_fit_folder_describes_itself(saved_fits):
 
 @pytest.mark.slow
 def test_report_and_compare_work_without_the_data_files(saved_fits, tmp_path):
-    from cladewise.evaluation.loo import compare_fits
+    from cladewise.evaluation.compare import compare_fits
     from cladewise.report import write_fit_report
     from cladewise.report.data import read_fit_folder
 

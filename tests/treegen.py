@@ -7,8 +7,13 @@ import numpy as np
 from cladewise.data.trees import FlatTree
 
 
-def random_tree(n_tips: int, rng: np.random.Generator, ultrametric: bool) -> FlatTree:
-    """Random bifurcating tree built by joining pairs (coalescent-like)."""
+def random_tree(n_tips: int, rng: np.random.Generator, ultrametric: bool = False,
+                root_edge: float = 0.0) -> FlatTree:
+    """Random bifurcating tree built by joining pairs (coalescent-like).
+
+    The one random-tree helper of the tests: ``ultrametric=False`` adds a random
+    length to every tip branch; ``root_edge`` puts a branch above the root.
+    """
     active = list(range(n_tips))
     parent = np.full(2 * n_tips - 1, -1)
     height = np.zeros(2 * n_tips - 1)
@@ -27,4 +32,5 @@ def random_tree(n_tips: int, rng: np.random.Generator, ultrametric: bool) -> Fla
     length[:-1] = height[parent[:-1]] - height[:-1]
     if not ultrametric:
         length[:n_tips] += rng.uniform(0, 1.0, n_tips)
+    length[-1] = root_edge
     return FlatTree(parent, length, tuple(f"s{i}" for i in range(n_tips)))

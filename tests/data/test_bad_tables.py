@@ -17,7 +17,7 @@ import pandas as pd
 import pytest
 
 from cladewise.data.matching import match_names
-from cladewise.data.summary import summarize
+from cladewise.data.summary import summarise_data
 from cladewise.data.tables import parse_separator
 from cladewise.data.traits import read_species_table, read_specimen_table, read_traits
 from cladewise.data.treefiles import parse_newick
@@ -283,7 +283,7 @@ def test_specimen_table_decimal_comma(tmp_path):
 def test_summary_reports_separator_and_rows(tmp_path):
     td = read_traits(_write(tmp_path, "s.csv", "species\tmass\nA\t1\nB\t2\nC\t4\n"))
     tree = parse_newick("((A:1,B:1):1,C:2);")
-    summary = summarize(match_names(tree, td))
+    summary = summarise_data(match_names(tree, td))
     text = summary.to_text()
     _assert_words(text, ["3 rows read", "separated by tabs (detected)", "decimal point"])
     assert "named .csv but its columns are separated by tabs" in text

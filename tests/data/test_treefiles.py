@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 
 from cladewise.data.matching import match_names
-from cladewise.data.summary import summarize
+from cladewise.data.summary import summarise_data
 from cladewise.data.traits import read_traits
 from cladewise.data.treefiles import format_newick, read_tree, read_trees
 from cladewise.data.trees import describe_tree, prune_to
@@ -163,7 +163,7 @@ def test_six_decimal_nexus_and_summary(tmp_path):
     tree = read_tree(path)
     assert tree.is_ultrametric(1e-6)
     table = _write(tmp_path, "x.csv", "species,x\n" + "".join(f"{n},{i}\n" for i, n in enumerate(tree.tip_names)))
-    summary = summarize(match_names(tree, read_traits(table)))
+    summary = summarise_data(match_names(tree, read_traits(table)))
     assert "ultrametric: yes" in summary.to_text() and "for rounded lengths" in summary.to_text()
 
 

@@ -15,20 +15,9 @@ from cladewise.evaluation.contrasts import (
 )
 from cladewise.errors import InputError
 from cladewise.data.trees import FlatTree, covariance
+from treegen import random_tree
 
 
-def random_tree(n: int, rng: np.random.Generator, root_edge: float = 0.0) -> FlatTree:
-    """Random bifurcating, non-ultrametric tree (new nodes get larger indices)."""
-    groups = list(range(n))
-    parent = np.full(2 * n - 1, -1)
-    nxt = n
-    for _ in range(n - 1):
-        i, j = sorted(rng.choice(len(groups), 2, replace=False))
-        parent[[groups[i], groups[j]]] = nxt
-        groups = [g for q, g in enumerate(groups) if q not in (i, j)] + [nxt]
-        nxt += 1
-    length = np.r_[rng.uniform(0.05, 1.5, 2 * n - 2), root_edge]
-    return FlatTree(parent, length, tuple(f"t{i}" for i in range(n)))
 
 
 def gls_reml(C: np.ndarray, y: np.ndarray, x: np.ndarray) -> dict[str, float]:
@@ -56,7 +45,7 @@ def test_contrasts_equal_gls(n, seed, root_edge):
     # 61:382-391): mean squared standardized contrast = REML BM rate; regression
     # through the origin = GLS slope with covariance C; root value = GLS root mean.
     rng = np.random.default_rng(seed)
-    tree = random_tree(n, rng, root_edge)
+    tree = random_tree(n, rng, root_edge=root_edge)
     C = covariance(tree)
     x = rng.normal(size=n) * 2 + 1
     y = 0.7 * x + rng.normal(size=n)

@@ -25,7 +25,9 @@ import scipy.stats
 
 from cladewise.model.build import ModelData, ModelSpec, build_model
 from cladewise.cli.main import main as cli_main
-from cladewise.evaluation.loo import compare_fits, loo_clades, loo_species, refit_influential
+from cladewise.evaluation.compare import compare_fits
+from cladewise.evaluation.loo import loo_species
+from cladewise.evaluation.refits import loo_clades, refit_influential
 from cladewise.errors import InputError
 from cladewise.inference.fit import FitResult, finish_fit, pointwise_loglik
 from cladewise.inference.sampling import SamplingOptions, sample

@@ -22,7 +22,8 @@ import xarray as xr
 from scipy.special import logsumexp
 
 from cladewise.data.trees import covariance
-from cladewise.evaluation.loo import compare_fits, loo_species
+from cladewise.evaluation.compare import compare_fits
+from cladewise.evaluation.loo import loo_species
 from treegen import random_tree
 
 warnings.filterwarnings("ignore", category=UserWarning)

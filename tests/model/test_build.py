@@ -15,7 +15,7 @@ from cladewise.model.build import ModelData, ModelSpec, build_model
 from cladewise.errors import InputError
 from cladewise.inference.fit import fit
 from cladewise.inference.sampling import SamplingOptions, compile_model, sample
-from cladewise.studies.simulate import simulate_dataset, simulate_traits
+from cladewise.studies.simulate import simulate_dataset
 from cladewise.data.trees import covariance
 
 from treegen import random_tree

@@ -264,7 +264,7 @@ def test_comparison_report(tmp_path):
 
 def _comparison_result():
     """A ComparisonResult built from its public fields, in the layout compare_fits writes."""
-    from cladewise.evaluation.loo import ComparisonResult
+    from cladewise.evaluation.compare import ComparisonResult
 
     table = pd.DataFrame({
         "model": ["bm", "ou", "lambda"], "rank": [1, 2, 3],

@@ -6,7 +6,6 @@ up to ~80 s when other heavy jobs share it); everything else needs no sampling.
 
 from __future__ import annotations
 
-import math
 from pathlib import Path
 
 import numpy as np

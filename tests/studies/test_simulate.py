@@ -17,6 +17,7 @@ from cladewise.studies.simulate import (
     write_dataset,
 )
 from cladewise.data.trees import FlatTree, covariance
+from treegen import random_tree
 
 # z for per-entry Monte Carlo bounds: two-sided p about 7e-6 per entry, so a few
 # hundred entries together stay below about 0.2% false alarms (common practice).
@@ -30,23 +31,6 @@ def poly_tree(root_edge: float = 0.4) -> FlatTree:
     return FlatTree(parent, length, tuple(f"sp{i}" for i in range(8)))
 
 
-def random_tree(n: int, rng: np.random.Generator, ultrametric: bool = False) -> FlatTree:
-    """Random bifurcating tree by joining random pairs (new nodes get larger indices)."""
-    groups = list(range(n))
-    parent = np.full(2 * n - 1, -1)
-    age = np.zeros(2 * n - 1)
-    length = np.zeros(2 * n - 1)
-    nxt = n
-    for _ in range(n - 1):
-        i, j = sorted(rng.choice(len(groups), 2, replace=False))
-        a, b = groups[i], groups[j]
-        parent[[a, b]] = nxt
-        age[nxt] = max(age[a], age[b]) + rng.uniform(0.1, 1.0)
-        groups = [g for q, g in enumerate(groups) if q not in (i, j)] + [nxt]
-        nxt += 1
-    for v in range(2 * n - 2):
-        length[v] = age[parent[v]] - age[v] if ultrametric else rng.uniform(0.05, 1.5)
-    return FlatTree(parent, length, tuple(f"t{i}" for i in range(n)))
 
 
 def assert_moments(draws: np.ndarray, mean: np.ndarray, cov: np.ndarray) -> np.ndarray:

@@ -51,7 +51,7 @@ def _names(dirs: list[Path], given: list[str] | None) -> list[str]:
 
 
 def _run(args: argparse.Namespace) -> int:
-    from cladewise.evaluation.loo import compare_fits
+    from cladewise.evaluation.compare import compare_fits
 
     dirs = [Path(d) for d in args.fits]
     if len(dirs) < 2:

@@ -35,7 +35,7 @@ from pathlib import Path
 from typing import Any
 
 from cladewise.config.tables import Key, Table, Where, check_sections, read_table, read_toml, section
-from cladewise.data.summary import DataSummary, summarize
+from cladewise.data.summary import DataSummary, summarise_data
 from cladewise.errors import InputError
 from cladewise.data.matching import MatchResult, match_names
 from cladewise.data.tables import parse_separator
@@ -289,7 +289,7 @@ def prepare_data(
         decimal=decimal,
     )
     match = match_names(ref, td, drop_unmatched=drop_unmatched, trees=sample)
-    summary = summarize(
+    summary = summarise_data(
         match,
         tree_source=str(tree if tree is not None else f"{trees} (tree 1)"),
         rtol=ultrametric_rtol,

@@ -17,7 +17,7 @@ import numpy as np
 from cladewise.data.matching import Dropped, MatchResult
 from cladewise.data.trees import TreeFacts, describe_tree
 
-__all__ = ["DataSummary", "TraitCoverage", "summarize"]
+__all__ = ["DataSummary", "TraitCoverage", "summarise_data"]
 
 
 @dataclass(frozen=True)
@@ -135,7 +135,7 @@ def _names(items: list[Dropped], k: int = 12) -> str:
     return shown + (f", ... ({len(items) - k} more)" if len(items) > k else "")
 
 
-def summarize(
+def summarise_data(
     match: MatchResult,
     tree_source: str = "",
     rtol: float = 1e-6,

@@ -24,7 +24,7 @@ _HEADERS = {"elpd": "ELPD (LOO)", "p_loo": "p_loo (effective parameters)", "elpd
             "weight": "stacking weight"}
 
 
-#: arviz.compare names -> the names of :class:`cladewise.evaluation.loo.ComparisonResult`
+#: arviz.compare names -> the names of :class:`cladewise.evaluation.compare.ComparisonResult`
 _ARVIZ_NAMES = {"elpd_loo": "elpd", "dse": "diff_se"}
 
 
@@ -39,14 +39,14 @@ def _unpack(comparison: Any, influential: Mapping[str, Any] | None,
         if notes is None:
             notes = list(getattr(comparison, "notes", []) or [])
     if not isinstance(table, pd.DataFrame):
-        raise InputError("the comparison must be a cladewise ComparisonResult (cladewise.evaluation.loo."
+        raise InputError("the comparison must be a cladewise ComparisonResult (cladewise.evaluation.compare."
                          "compare_fits), its .table, or a pandas DataFrame like arviz.compare() returns")
     table = table.rename(columns={k: v for k, v in _ARVIZ_NAMES.items() if v not in table.columns})
     if "model" in table.columns:
         table = table.set_index("model")
     if "elpd" not in table.columns:
         raise InputError("the comparison table has no elpd column; pass the result of "
-                         "cladewise.evaluation.loo.compare_fits (or of arviz.compare())")
+                         "cladewise.evaluation.compare.compare_fits (or of arviz.compare())")
     if "n_high_k" not in table.columns and "warning" in table.columns:
         # arviz.compare flags a model with any high Pareto k, without the count
         table = table.assign(n_high_k=table["warning"].astype(bool).astype(int))
@@ -129,7 +129,7 @@ def write_comparison_report(
     Parameters
     ----------
     comparison : ComparisonResult, DataFrame or object
-        The result of :func:`cladewise.evaluation.loo.compare_fits` (its ``table``,
+        The result of :func:`cladewise.evaluation.compare.compare_fits` (its ``table``,
         ``influential`` and ``notes`` are used), its table (columns model or index,
         elpd, se, elpd_diff, diff_se, p_loo, weight, n_high_k, verdict), or an
         ``arviz.compare`` table (elpd_loo, dse and warning are read as elpd, diff_se
