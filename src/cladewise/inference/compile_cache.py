@@ -60,6 +60,8 @@ __all__ = [
     "compile_cache_dir",
     "clear_compile_cache",
     "compile_cache_info",
+    "prune_compile_cache",
+    "structure_key",
     "DEFAULT_MAX_MB",
 ]
 
@@ -131,17 +133,27 @@ def clear_compile_cache() -> int:
     return n
 
 
-def _evict(root: Path, keep: Path, limit: int) -> None:
+def prune_compile_cache(max_bytes: int | None = None, keep: str | None = None) -> int:
+    """Remove least recently used entries until the cache is at most ``max_bytes``.
+
+    ``max_bytes`` defaults to ``$CLADEWISE_CACHE_MAX_MB`` (or :data:`DEFAULT_MAX_MB`);
+    the entry named ``keep`` is never removed. Returns how many entries were removed.
+    """
+    root = compile_cache_dir()
+    limit = _max_bytes() if max_bytes is None else int(max_bytes)
     entries = sorted(_entries(root), key=lambda e: (e / "meta.json").stat().st_mtime)
     sizes = {e: _size(e) for e in entries}
     total = sum(sizes.values())
+    removed = 0
     for e in entries:
         if total <= limit:
             break
-        if e == keep:
+        if e.name == keep:
             continue
         shutil.rmtree(e, ignore_errors=True)
         total -= sizes[e]
+        removed += 1
+    return removed
 
 
 # --------------------------------------------------------------------------- keys
@@ -331,7 +343,7 @@ def _write_entry(root: Path, key: str, blobs: dict[str, bytes], meta: dict[str, 
             pass  # another process wrote the same entry meanwhile
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
-    _evict(root, root / key, _max_bytes())
+    prune_compile_cache(keep=key)
 
 
 # --------------------------------------------------------------------------- compile
@@ -361,7 +373,12 @@ def _lift_constants(model: Any) -> Any:
                     shape=inp.type.shape,
                 )
     fgraph.replace_all(list(lifted.items()), import_missing=True)
-    return model_from_fgraph(fgraph, mutate_fgraph=True)
+    out = model_from_fgraph(fgraph, mutate_fgraph=True)
+    # keep the parameter order of the original, so nutpie lays out its flat vector
+    # (and so uses its random numbers) exactly as for the original model
+    rank = {rv.name: i for i, rv in enumerate(model.free_RVs)}
+    out.free_RVs.sort(key=lambda rv: rank.get(rv.name, len(rank)))
+    return out
 
 
 def _prepare(model: Any) -> dict[str, Any]:
@@ -444,6 +461,14 @@ def _compile(model: Any, prep: dict[str, Any], payloads: dict[str, Any] | None):
         raw, sig = prep["raw"][name]
         cfuncs[name], caches[name] = _make_cfunc(raw, sig, (payloads or {}).get(name))
     return _assemble(model, prep, cfuncs), caches
+
+
+def structure_key(model: Any) -> str | None:
+    """The cache key of a PyMC model: equal for models that share compiled code.
+
+    ``None`` when the model cannot be cached (PyTensor cannot key one of its ops).
+    """
+    return _key(_prepare(_lift_constants(model)))[0]
 
 
 def compile_cached(model: Any, *, info: dict[str, Any] | None = None) -> Any:
