@@ -14,7 +14,11 @@ Columns: cache status, compile seconds, sampling seconds (2 chains x 1000 tuning
 1000 draws), warm compile + sampling, minimum bulk ESS of the reported quantities and
 minimum bulk ESS per second of sampling. Target: warm compile + sampling under 5 s.
 
-Run:  python benchmarks/bench_compile.py [--cache-dir DIR] [--skip-uncached]
+With --first-run it instead measures the first demo fit on a fresh install (empty
+numba, PyTensor and cladewise caches, issue 16 part 2) and lists the numba functions
+that compiled, longest first (inclusive seconds; nested calls overlap).
+
+Run:  python benchmarks/bench_compile.py [--cache-dir DIR] [--skip-uncached] [--first-run]
 (uses a fresh temporary cache unless --cache-dir is given). Timings depend on the
 machine's load; the table prints the 1-minute load average beside them.
 """
@@ -60,8 +64,20 @@ def child(variant: str) -> None:
     built = build_model(data, prep.model_spec)
     t1 = time.perf_counter()
     info: dict = {}
-    compiled = compile_cached(built.model, info=info)
+    from numba.core import event
+
+    with event.install_recorder("numba:compile") as rec:
+        compiled = compile_cached(built.model, info=info)
     t2 = time.perf_counter()
+    starts: dict = {}
+    compiles: dict = {}
+    for stamp, ev in rec.buffer:
+        disp = ev.data["dispatcher"]
+        name = f"{disp.py_func.__module__}.{disp.py_func.__qualname__}"
+        if ev.is_start:
+            starts[id(ev.data)] = stamp
+        else:
+            compiles[name] = compiles.get(name, 0.0) + stamp - starts.pop(id(ev.data), stamp)
     opts = SamplingOptions(chains=2, draws=1000, tune=1000, seed=1, progress=False)
     idata = sample(built, opts, compiled=compiled)
     t3 = time.perf_counter()
@@ -69,12 +85,17 @@ def child(variant: str) -> None:
     print("RESULT" + json.dumps({
         "status": info.get("status"), "setup_s": t1 - t0, "compile_s": t2 - t1,
         "sample_s": t3 - t2, "min_ess_bulk": d.min_ess_bulk,
-        "load": os.getloadavg()[0],
+        "load": os.getloadavg()[0], "import_build_s": t1 - t0,
+        "numba_compiles": sorted(compiles.items(), key=lambda kv: -kv[1]),
     }))
 
 
-def run(variant: str, cache: Path, enabled: bool = True) -> dict:
+def run(variant: str, cache: Path, enabled: bool = True, fresh: bool = False) -> dict:
     env = dict(os.environ, CLADEWISE_CACHE_DIR=str(cache), PYTHONWARNINGS="ignore")
+    if fresh:  # every compiler cache empty, as on a new install
+        env["NUMBA_CACHE_DIR"] = str(cache / "numba")
+        env["PYTENSOR_FLAGS"] = f"base_compiledir={cache / 'pytensor'}"
+        env["PYTHONDONTWRITEBYTECODE"] = "1"
     env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(ROOT / "src"), env.get("PYTHONPATH")]))
     if not enabled:
         env["CLADEWISE_COMPILE_CACHE"] = "0"
@@ -90,6 +111,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--cache-dir", type=Path, default=None)
     ap.add_argument("--skip-uncached", action="store_true")
+    ap.add_argument("--first-run", action="store_true")
     ap.add_argument("--child", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
@@ -101,6 +123,11 @@ def main() -> None:
         cache = Path(tmp.name)
     else:
         cache = args.cache_dir
+    if args.first_run:
+        first_run(cache)
+        if tmp is not None:
+            tmp.cleanup()
+        return
     rows = []
     if not args.skip_uncached:
         rows.append(("uncached", run("same", cache, enabled=False)))
@@ -122,6 +149,19 @@ def main() -> None:
     print(f"\nwarm compile + sampling: {best:.2f} s (target < 5 s): {'met' if best < 5 else 'NOT met'}")
     if tmp is not None:
         tmp.cleanup()
+
+
+def first_run(cache: Path) -> None:
+    r = run("same", cache, fresh=True)
+    print("First demo fit with empty numba, PyTensor and cladewise caches (new install)")
+    print(f"imports + data + model build {r['import_build_s']:.1f} s, compile {r['compile_s']:.1f} s "
+          f"({r['status']}), sampling {r['sample_s']:.1f} s, load average {r['load']:.1f}")
+    print(f"\n{'numba function compiled (inclusive s)':<78}{'s':>8}")
+    for name, secs in r["numba_compiles"][:25]:
+        print(f"{name[-78:]:<78}{secs:>8.1f}")
+    r2 = run("same", cache, fresh=True)
+    print(f"\nsecond process, same caches: compile {r2['compile_s']:.1f} s ({r2['status']}), "
+          f"sampling {r2['sample_s']:.1f} s")
 
 
 if __name__ == "__main__":
