@@ -356,36 +356,67 @@ def _write_entry(root: Path, key: str, blobs: dict[str, bytes], meta: dict[str, 
 # --------------------------------------------------------------------------- compile
 
 
-def _lift_constants(model: Any) -> Any:
-    """An equivalent model whose array constants are shared variables.
+class _SharedArrays:
+    """Replaces array constants of graphs by shared variables, the same one per value.
 
-    The model builder puts data-derived arrays (specimen statistics, prior scales,
-    index arrays) into the graph as constants, which numba would bake into the
-    compiled code. As shared variables they are read through nutpie's data pointers
-    instead, so another data set of the same sizes reuses the compiled code. Types
-    (static shapes) are kept; scalars stay constants because some log densities
-    need them constant (e.g. the LKJ shape).
+    The model builder puts data-derived arrays (specimen statistics, data-scaled
+    prior scales, index arrays) into the graph as constants, which numba would bake
+    into the compiled code. As shared variables they are read through nutpie's data
+    pointers instead, so other data of the same sizes reuses the compiled code.
+    Types (static shapes) are kept; scalars stay constants because some log
+    densities need them constant (e.g. the LKJ shape).
     """
-    import pytensor
-    from pymc.model.fgraph import fgraph_from_model, model_from_fgraph
-    from pytensor.graph.basic import Constant
 
-    fgraph, _ = fgraph_from_model(model)
-    lifted: dict[Any, Any] = {}
-    for node in fgraph.toposort():
-        for inp in node.inputs:
-            if isinstance(inp, Constant) and inp not in lifted and getattr(inp.type, "ndim", 0) > 0:
-                lifted[inp] = pytensor.shared(
-                    np.array(inp.data, copy=True), name=f"cladewise_const_{len(lifted)}",
-                    shape=inp.type.shape,
-                )
-    fgraph.replace_all(list(lifted.items()), import_missing=True)
-    out = model_from_fgraph(fgraph, mutate_fgraph=True)
-    # keep the parameter order of the original, so nutpie lays out its flat vector
-    # (and so uses its random numbers) exactly as for the original model
-    rank = {rv.name: i for i, rv in enumerate(model.free_RVs)}
-    out.free_RVs.sort(key=lambda rv: rank.get(rv.name, len(rank)))
-    return out
+    def __init__(self) -> None:
+        self.by_value: dict[tuple, Any] = {}
+
+    def __call__(self, outputs: Any) -> Any:
+        import pytensor
+        from pytensor.graph.basic import Constant, ancestors
+
+        single = not isinstance(outputs, (list, tuple))
+        outs = [outputs] if single else list(outputs)
+        replace = {}
+        for var in ancestors(outs):
+            if isinstance(var, Constant) and getattr(var.type, "ndim", 0) > 0:
+                data = np.asarray(var.data)
+                sig = (str(var.type), _sha(np.ascontiguousarray(data).tobytes()))
+                if sig not in self.by_value:
+                    self.by_value[sig] = pytensor.shared(
+                        data.copy(), name=f"cladewise_const_{len(self.by_value)}",
+                        shape=var.type.shape,
+                    )
+                replace[var] = self.by_value[sig]
+        new = pytensor.clone_replace(outs, replace=replace) if replace else outs
+        return new[0] if single else list(new)
+
+
+class _LiftedModel:
+    """The model as nutpie's compiler sees it, with array constants lifted.
+
+    Only the graphs compiled to numba (log density and the values stored per draw)
+    change; everything else (shapes, initial points, names) is the model's own.
+    """
+
+    def __init__(self, model: Any) -> None:
+        self._model = model
+        self._lift = _SharedArrays()
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._model, name)
+
+    def __enter__(self) -> Any:
+        return self._model.__enter__()
+
+    def __exit__(self, *exc: Any) -> Any:
+        return self._model.__exit__(*exc)
+
+    def logp(self, *args: Any, **kwargs: Any) -> Any:
+        return self._lift(self._model.logp(*args, **kwargs))
+
+    @property
+    def unobserved_value_vars(self) -> list:
+        return self._lift(self._model.unobserved_value_vars)
 
 
 def _prepare(model: Any) -> dict[str, Any]:
@@ -398,7 +429,7 @@ def _prepare(model: Any) -> dict[str, Any]:
         jitter_rvs=set(model.free_RVs), return_transformed=True,
     ))
     n_dim, n_expanded, logp_pt, expand_pt, ipf, shape_info = cp._make_functions(
-        model, mode="NUMBA", compute_grad=True, join_expanded=True,
+        _LiftedModel(model), mode="NUMBA", compute_grad=True, join_expanded=True,
         pymc_initial_point_fn=pymc_ipf, var_names=None,
     )
     shared_data: dict[str, np.ndarray] = {}
@@ -475,7 +506,7 @@ def structure_key(model: Any) -> str | None:
 
     ``None`` when the model cannot be cached (PyTensor cannot key one of its ops).
     """
-    return _key(_prepare(_lift_constants(model)))[0]
+    return _key(_prepare(model))[0]
 
 
 def compile_cached(model: Any, *, info: dict[str, Any] | None = None) -> Any:
@@ -509,7 +540,7 @@ def compile_cached(model: Any, *, info: dict[str, Any] | None = None) -> Any:
     if os.environ.get("CLADEWISE_COMPILE_CACHE", "1").strip().lower() in ("0", "no", "false", "off"):
         return plain("CLADEWISE_COMPILE_CACHE is off")
     try:
-        prep = _prepare(_lift_constants(model))
+        prep = _prepare(model)
         key, desc = _key(prep)
     except Exception as err:  # noqa: BLE001 - a real model error is raised again by nutpie
         return plain(f"cache unavailable for this model: {err!r}")
