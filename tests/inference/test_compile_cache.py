@@ -39,8 +39,8 @@ k = len(spec["traits"])
 y = rng.normal(size=(8, k)) * rng.uniform(0.5, 3.0, k) + rng.normal(size=k)
 data = ModelData(tree=tree, values=pd.DataFrame(y, index=list(tree.tip_names), columns=spec["traits"]))
 model = build_model(data, ModelSpec.from_dict(spec)).model
-info = {}
-compiled = compile_cached(model, info=info)
+info, said = {}, []
+compiled = compile_cached(model, info=info, on_compile=said.append)
 
 names, slices, shapes = compiled.shape_info
 layout = {n: (s, tuple(sh)) for n, s, sh in zip(names, slices, shapes)}
@@ -60,7 +60,7 @@ for i in range(4):
         "rc": int(rc), "logp": float(logp[0]), "grad": np.concatenate([grad[layout[n][0]] for n in order]).tolist(),
         "ref_logp": float(logp_ref(point)), "ref_grad": np.asarray(dlogp_ref(point)).tolist(),
     })
-print("RESULT" + json.dumps({"status": info["status"], "key": info.get("key"), "rows": rows}))
+print("RESULT" + json.dumps({"status": info["status"], "key": info.get("key"), "rows": rows, "said": said}))
 """
 
 SPEC = {"kind": "correlated", "traits": ["a", "b"]}
@@ -95,6 +95,7 @@ def cold(tmp_path_factory):
 def test_cold_compile_matches_pymc_and_is_stored(cold):
     cache, result = cold
     assert result["status"] == "miss"
+    assert len(result["said"]) == 1 and "Compiling" in result["said"][0]
     assert_matches_pymc(result)
     entry = cache / "compiled" / result["key"]
     meta = json.loads((entry / "meta.json").read_text())
@@ -104,7 +105,7 @@ def test_cold_compile_matches_pymc_and_is_stored(cold):
 def test_new_process_other_data_and_tree_reuses_entry(cold):
     cache, first = cold
     result = run(cache, seed=2)  # another tree, other trait values, same structure
-    assert result["status"] == "hit"
+    assert result["status"] == "hit" and result["said"] == []
     assert result["key"] == first["key"]
     assert_matches_pymc(result)
 
@@ -142,7 +143,7 @@ def test_stale_entry_with_valid_checksums_is_rejected(cold, tmp_path):
 
 
 def _key_in_subprocess(cache: Path, spec: dict) -> str:
-    code = SCRIPT.split("info = {}")[0] + (
+    code = SCRIPT.split("info, said = ")[0] + (
         "from cladewise.inference.compile_cache import structure_key\n"
         "print('RESULT' + json.dumps({'key': structure_key(model)}))\n"
     )

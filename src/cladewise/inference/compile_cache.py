@@ -56,7 +56,7 @@ import time
 import uuid
 import warnings
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 
@@ -509,7 +509,12 @@ def structure_key(model: Any) -> str | None:
     return _key(_prepare(model))[0]
 
 
-def compile_cached(model: Any, *, info: dict[str, Any] | None = None) -> Any:
+def compile_cached(
+    model: Any,
+    *,
+    info: dict[str, Any] | None = None,
+    on_compile: Callable[[str], None] | None = None,
+) -> Any:
     """Compile a PyMC model for nutpie, reusing a compiled model of the same structure.
 
     Parameters
@@ -519,6 +524,9 @@ def compile_cached(model: Any, *, info: dict[str, Any] | None = None) -> Any:
     info : dict, optional
         Filled with ``status`` (``"hit"``, ``"miss"``, ``"rebuilt"`` after a bad
         entry, or ``"uncached"``), ``key``, ``path`` and ``seconds``.
+    on_compile : callable, optional
+        Called with a sentence just before a slow numba compile starts (not on a
+        cache hit), so a command line can say why it is waiting.
 
     Returns
     -------
@@ -531,7 +539,14 @@ def compile_cached(model: Any, *, info: dict[str, Any] | None = None) -> Any:
     info = {} if info is None else info
     info.clear()
 
+    def announce(why: str) -> None:
+        if on_compile is not None:
+            on_compile(f"Compiling the model for nutpie ({why}); this takes about half a "
+                       "minute, or a few minutes on the very first run while numba compiles "
+                       f"the likelihood engine. Compiled models are kept in {compile_cache_dir()}.")
+
     def plain(reason: str) -> Any:
+        announce(reason)
         info.update(status="uncached", reason=reason)
         out = nutpie.compile_pymc_model(model)
         info["seconds"] = time.perf_counter() - t0
@@ -562,6 +577,8 @@ def compile_cached(model: Any, *, info: dict[str, Any] | None = None) -> Any:
                     return compiled
             shutil.rmtree(entry, ignore_errors=True)
             status = "rebuilt"
+        announce("first time for this model structure" if status == "miss"
+                 else "the cached copy failed its checks and is rebuilt")
         compiled, caches = _compile(model, prep, None)
         if not _agrees(compiled, model):
             return plain("the shared-data form of the model disagreed with PyMC")
