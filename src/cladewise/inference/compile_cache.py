@@ -104,7 +104,9 @@ def _max_bytes() -> int:
 def _entries(root: Path) -> list[Path]:
     if not root.is_dir():
         return []
-    return [p for p in root.iterdir() if p.is_dir() and (p / "meta.json").exists()]
+    # names starting with "." are entries still being written by some process
+    return [p for p in root.iterdir()
+            if p.is_dir() and not p.name.startswith(".") and (p / "meta.json").exists()]
 
 
 def _size(path: Path) -> int:
