@@ -110,8 +110,6 @@ def test_subset_choice():
 # ------------------------------------------------------------------ one shared fit
 @pytest.fixture(scope="module")
 def sample_fit():
-    import nutpie
-
     rng = np.random.default_rng(1)
     t0 = random_tree(N_SPECIES, rng, True)
     other = collapse(random_tree(N_SPECIES, np.random.default_rng(2), True), 12)  # one node fewer
@@ -122,7 +120,9 @@ def sample_fit():
     y[3, 1] = np.nan  # a missing cell: observed data must still pool to one copy
     data = ModelData(tree=t0, values=pd.DataFrame(y, index=list(t0.tip_names), columns=["a", "b"]))
     spec = ModelSpec.from_dict({"kind": "correlated", "traits": ["a", "b"]})
-    real = nutpie.compile_pymc_model
+    from cladewise.inference import compile_cache
+
+    real = compile_cache.compile_cached  # every nutpie compile goes through it
     calls = []
 
     def counting(*a, **k):
@@ -130,7 +130,7 @@ def sample_fit():
         return real(*a, **k)
 
     mp = pytest.MonkeyPatch()
-    mp.setattr(nutpie, "compile_pymc_model", counting)
+    mp.setattr(compile_cache, "compile_cached", counting)
     try:
         res = fit_tree_sample(data, spec, trees, OPTS, progress=False)
     finally:

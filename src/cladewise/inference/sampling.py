@@ -66,12 +66,16 @@ class SamplingOptions:
 
 
 def compile_model(built: BuiltModel, sampler: str = "nutpie") -> Any:
-    """Compile once for nutpie; the result serves every tree of the same size."""
+    """Compile once for nutpie; the result serves every tree of the same size.
+
+    A model of the same structure compiled before, in any process, is loaded from
+    the on-disk cache of :mod:`cladewise.inference.compile_cache`.
+    """
     if sampler != "nutpie":
         return None
-    import nutpie
+    from cladewise.inference.compile_cache import compile_cached
 
-    return nutpie.compile_pymc_model(built.model)
+    return compile_cached(built.model)
 
 
 def sample(
