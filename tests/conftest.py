@@ -7,12 +7,18 @@ random-tree generator, ``engine_cases`` holds hypothesis strategies for the engi
 
 from __future__ import annotations
 
+import os
+import tempfile
 from pathlib import Path
 
 import numpy as np
 import pytest
 
 REPO = Path(__file__).resolve().parents[1]
+
+# Compiled models go to a cache of this test session (shared by its subprocesses),
+# not to the user's cache; set CLADEWISE_CACHE_DIR to keep one between runs.
+os.environ.setdefault("CLADEWISE_CACHE_DIR", tempfile.mkdtemp(prefix="cladewise-test-cache-"))
 
 
 @pytest.fixture(scope="session")

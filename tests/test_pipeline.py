@@ -169,8 +169,11 @@ def test_starting_point_check_names_the_term_and_cause(tmp_path, monkeypatch):
     # makes the model itself invariant to the tree's units.)
     import nutpie
 
+    import cladewise.inference.compile_cache as compile_cache
+
     compiled = []
     monkeypatch.setattr(nutpie, "compile_pymc_model", lambda *a, **k: compiled.append(1))
+    monkeypatch.setattr(compile_cache, "compile_cached", lambda *a, **k: compiled.append(1))
     _write_data(tmp_path / "data", se=False)
     model = ('kind = "correlated"\ntraits = ["a", "b"]\nevolution = "early_burst"\n'
              "fixed = { rate_change = -3000.0 }")

@@ -9,7 +9,6 @@ user's second ``cladewise fit`` would.
 
 from __future__ import annotations
 
-import ctypes
 import json
 import os
 import shutil
