@@ -220,6 +220,7 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
     Each replicate is a fresh draw of every species' values from the fitted model:
     evolution on the tree, species-level deviation and measurement error.
     """
+    from cladewise.model.within_species import draw_errors
     from cladewise.studies.simulate import simulate_traits
 
     d, (nc, nd) = engine_draws(built, idata)
@@ -233,7 +234,7 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
     for a, s in enumerate(pick):
         t = tree.with_lengths(d["lengths"][s])
         x = simulate_traits(t, d["R"][s], d["mu"][s], E=d["E"][s], rng=rng)
-        x = x + rng.standard_normal((n, k)) * np.sqrt(d["err_var"][s])
+        x = x + draw_errors(d["err_var"][s], rng)
         if is_regression:
             # residual + fitted value: y = X beta + e
             fitted = np.where(built.observed, built.y, 0.0) - d["y"][s]
