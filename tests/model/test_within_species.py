@@ -200,6 +200,58 @@ def test_draw_errors_has_the_stated_covariance():
     assert np.all(draws[:, 1, 1] == 0.0)
 
 
+def test_fit_stores_loo_conditionals_with_correlated_errors_of_the_means():
+    # End to end (short chain): the stored pointwise log-likelihood of each species
+    # equals its leave-one-out density by explicit Gaussian conditioning of the
+    # dense covariance C (x) R + blockdiag(W_i n_ab / (n_a n_b)) (scipy; Bürkner,
+    # Gabry & Vehtari 2021, Computational Statistics 36:1243-1261). LOO holds out the
+    # species' means only: its specimen (co)variances stay in the fit.
+    from cladewise.inference.fit import fit
+    from cladewise.inference.sampling import SamplingOptions
+
+    rng = np.random.default_rng(21)
+    tree = random_tree(12, rng, True)
+    rows, traits = _specimens(rng, tree, 2, np.array([[0.2, 0.15], [0.15, 0.2]]))
+    data = _model_data(tree, rows, traits)
+    res = fit(data, ModelSpec(kind="correlated", traits=traits, measurement_error="specimens"),
+              SamplingOptions(chains=1, draws=20, tune=100, seed=2, progress=False), predictive_draws=5)
+    assert "within_corr[t0, t1]" in set(res.summary["quantity"])
+    assert np.isfinite(res.idata.posterior_predictive["y_rep"].values).all()
+    post = res.idata.posterior
+    ll = res.idata.log_likelihood["y"].values[0]
+    names = list(tree.tip_names)
+    C = covariance(tree)
+    means = data.values.to_numpy()
+    obs = np.isfinite(means).ravel()
+    for d in (0, 19):
+        rate = post["evo_rate"].values[0, d]
+        R = np.sqrt(np.outer(rate, rate)) * post["evo_corr"].values[0, d]
+        corr = post["within_corr"].values[0, d]
+        sd = np.exp(0.5 * (post["within_log_var_mean"].values[0, d][None, :]
+                           + post["within_log_var_sd"].values[0, d][None, :] * post["within_z"].values[0, d]))
+        full = np.kron(C, R)
+        for i, name in enumerate(names):
+            have = np.isfinite(rows.loc[rows["species"] == name, traits].to_numpy(dtype=float))
+            na, nab = have.sum(axis=0), have.T.astype(float) @ have
+            with np.errstate(divide="ignore", invalid="ignore"):
+                Si = np.where(np.outer(na, na) > 0, np.outer(sd[i], sd[i]) * corr * nab / np.outer(na, na), 0.0)
+            full[2 * i:2 * i + 2, 2 * i:2 * i + 2] += Si
+        mu = post["root_mean"].values[0, d]
+        v, m = means.ravel(), np.tile(mu, len(names))
+        for i in range(len(names)):
+            a = np.zeros(2 * len(names), bool)
+            a[2 * i:2 * i + 2] = True
+            a &= obs
+            if not a.any():
+                continue
+            b = obs & ~a
+            K = full[np.ix_(a, b)] @ np.linalg.inv(full[np.ix_(b, b)])
+            cm = m[a] + K @ (v[b] - m[b])
+            cv = full[np.ix_(a, a)] - K @ full[np.ix_(b, a)]
+            ref = scipy.stats.multivariate_normal(cm, cv).logpdf(v[a])
+            np.testing.assert_allclose(ll[d, i], ref, rtol=1e-7)
+
+
 # ---------------------------------------------------------------- recovery
 # Setting of issue 12 part 1 ("same-specimen traits"): 150 species, 3 specimens
 # each, within-species correlation 0.8; evolutionary rates 0.05 on a unit-height
