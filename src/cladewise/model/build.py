@@ -27,10 +27,14 @@ phylogenetic share of variance per trait, ``phylo_share = R_jj t / (R_jj t + E_j
 with t the mean root-to-tip distance of the (transformed) tree.
 
 Measurement error: ``none``; ``se`` (known standard errors from the table, variance
-``se^2``); ``specimens`` (a within-species variance per species and trait, partially
-pooled across species on the log scale; each species' sample variance s^2 from n >= 2
+``se^2``, independent across traits unless ``error_correlation`` is given);
+``specimens`` (a within-species variance per species and trait, partially pooled
+across species on the log scale; each species' sample variance s^2 from n >= 2
 specimens adds the likelihood term ``(n-1) s^2 / sigma_w^2 ~ chi^2(n-1)``, and the
-error variance of the species mean is ``sigma_w^2 / n``).
+error variance of the species mean is ``sigma_w^2 / n``). With two or more traits
+and the specimen rows, the specimens model estimates the full within-species
+covariance (shared correlation ``within_corr``, Wishart terms, correlated errors of
+the means): see :mod:`cladewise.model.within_species`.
 
 Default priors are weakly informative and scaled to the data (see :data:`PRIOR_KEYS`
 and :func:`build_model`); every prior used is listed in ``BuiltModel.priors``.
