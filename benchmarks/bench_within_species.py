@@ -24,6 +24,7 @@ from __future__ import annotations
 import argparse
 import math
 import sys
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -116,6 +117,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--seed", type=int, default=1)
     p.add_argument("--skip-fits", action="store_true", help="engine timings only")
     args = p.parse_args(argv)
+    # R-hat of a constant (a correlation matrix's diagonal) is 0/0: not news
+    warnings.simplefilter("ignore", RuntimeWarning)
+    warnings.simplefilter("ignore", UserWarning)
     engine_table()
     if not args.skip_fits:
         fit_table(args.datasets, args.draws, args.seed)
