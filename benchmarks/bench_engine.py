@@ -50,6 +50,14 @@ def make_problem_k1(n: int, seed: int = 0):
             E[:1, :1].copy(), err_var[:, :1].copy(), mu[:1].copy())
 
 
+def kernel_args(args):
+    """The kernels take the error as (N, k, k) covariances: embed the variances."""
+    a = list(args)
+    ev = a[6]
+    a[6] = ev[:, :, None] * np.eye(ev.shape[1])[None, :, :]
+    return tuple(a)
+
+
 def median_time(fn, min_total: float = 0.3, min_reps: int = 5, max_reps: int = 2000) -> float:
     times = []
     start = time.perf_counter()
@@ -94,12 +102,13 @@ def dense_value_and_grad(C, y, observed, R, err_var, mu):
 def main() -> None:
     rows = {}
     # compile outside the timings
-    kernels.value_and_grad_kernel(*make_problem(10))
-    kernels.loglik_kernel(*make_problem(10))
+    kernels.value_and_grad_kernel(*kernel_args(make_problem(10)))
+    kernels.loglik_kernel(*kernel_args(make_problem(10)))
     for n in ENGINE_SIZES:
         args = make_problem(n)
-        t_engine = median_time(lambda: kernels.value_and_grad_kernel(*args))
-        t_value = median_time(lambda: kernels.loglik_kernel(*args))
+        kargs = kernel_args(args)
+        t_engine = median_time(lambda: kernels.value_and_grad_kernel(*kargs))
+        t_value = median_time(lambda: kernels.loglik_kernel(*kargs))
         tracemalloc.start()
         logp, grad = loglik_and_grad(*args)
         peak_engine = tracemalloc.get_traced_memory()[1]
@@ -141,11 +150,11 @@ def main() -> None:
     print(f"engine speedup vs dense at N=2000: {rows[2000]['dense'] / rows[2000]['engine']:.0f}x")
 
     # k = 1 has its own closed-form path in the kernels
-    kernels.value_and_grad_kernel(*make_problem_k1(10))
-    kernels.loglik_kernel(*make_problem_k1(10))
+    kernels.value_and_grad_kernel(*kernel_args(make_problem_k1(10)))
+    kernels.loglik_kernel(*kernel_args(make_problem_k1(10)))
     print("k=1, same setting: value ms / engine ms (value + gradient)")
     for n in [1_000, 10_000, 50_000]:
-        args = make_problem_k1(n)
+        args = kernel_args(make_problem_k1(n))
         t_value = median_time(lambda: kernels.loglik_kernel(*args))
         t_engine = median_time(lambda: kernels.value_and_grad_kernel(*args))
         print(f"{n:>7} {1e3 * t_value:9.3f} {1e3 * t_engine:10.3f}")

@@ -9,7 +9,8 @@ from cladewise.engine.testing import random_rate_matrix, random_tree
 
 
 def make_case(seed, n_tips, k, max_children=3, zero_internal=0.2, root_edge=False,
-              with_E=False, with_err=True, p_missing=0.2, n_species_missing=0):
+              with_E=False, with_err=True, p_missing=0.2, n_species_missing=0,
+              err_full=False):
     rng = np.random.default_rng(seed)
     parent, lengths = random_tree(
         n_tips, rng, max_children=max_children, zero_internal=zero_internal,
@@ -18,6 +19,12 @@ def make_case(seed, n_tips, k, max_children=3, zero_internal=0.2, root_edge=Fals
     R = random_rate_matrix(k, rng)
     E = random_rate_matrix(k, rng, scale=0.5) if with_E else np.zeros((k, k))
     err_var = rng.uniform(0.01, 0.5, (n_tips, k)) if with_err else np.zeros((n_tips, k))
+    if with_err and err_full:
+        # per-species error covariance with correlated traits (same specimens)
+        A = rng.normal(size=(n_tips, k, k))
+        err_var = 0.2 * A @ np.swapaxes(A, 1, 2) / k + 0.02 * np.eye(k)
+    elif err_full:
+        err_var = np.zeros((n_tips, k, k))
     observed = rng.random((n_tips, k)) >= p_missing
     if n_species_missing:
         observed[rng.choice(n_tips, min(n_species_missing, n_tips), replace=False)] = False
@@ -40,6 +47,7 @@ def cases(draw, max_tips=60, max_k=4):
         with_err=draw(st.booleans()),
         p_missing=draw(st.sampled_from([0.0, 0.2, 0.5])),
         n_species_missing=draw(st.integers(0, 2)),
+        err_full=draw(st.booleans()),
     )
 
 

@@ -144,6 +144,10 @@ MODEL = Table("model", {
     "measurement_error": Key("str", "measurement-error model", choices=MEASUREMENT_ERROR, example='"none"'),
     "species_covariance": Key("bool", "true: add a species-level (non-phylogenetic) covariance",
                               example="false"),
+    "error_correlation": Key(("float", "list[list[float]]"), "correlation of the errors of the species "
+                             "means between traits, with measurement_error = \"se\": one number for every "
+                             "pair or a k x k matrix in the order of traits (default 0)", min=-1.0, max=1.0,
+                             example="0.5"),
     "priors": Key("table", "overrides of the default priors", table=MODEL_PRIORS,
                   example="{ lkj_eta = 2.0 }"),
     "fixed": Key("table", "an evolution-model parameter held fixed", table=MODEL_FIXED,

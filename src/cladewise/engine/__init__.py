@@ -3,10 +3,13 @@
 Model (species i = 1..N, traits j = 1..k). Latent species values ``X`` (N x k)
 follow multivariate Brownian motion with rate matrix ``R`` on the tree; the branch
 lengths are inputs (already transformed by an evolution model, and differentiable).
-Species ``i`` is observed as ``y_i = x_i + e_i`` with
-``e_i ~ N(0, E + diag(err_var[i]))``; only observed cells enter, so for them
+Species ``i`` is observed as ``y_i = x_i + e_i`` with ``e_i ~ N(0, E + S_i)``, where
+the measurement-error covariance ``S_i`` is ``diag(err_var[i])`` for ``(N, k)``
+variances or ``err_var[i]`` itself for a full ``(N, k, k)`` array (traits measured
+on the same specimens have correlated errors); only observed cells enter (the
+rows and columns of ``S_i`` for unobserved cells are dropped), so for them
 
-    vec(Y) ~ N(1 (x) mu,  C (x) R + I (x) E + diag(err_var)),
+    vec(Y) ~ N(1 (x) mu,  C (x) R + I (x) E + blockdiag(S_1, ..., S_N)),
 
 with ``C`` the shared-path-length matrix of the tree (plus the root edge).
 

@@ -55,6 +55,49 @@ def _check_cov(name: str, M: np.ndarray, k: int, semidefinite: bool) -> None:
         raise InputError(f"{name} must be {kind}")
 
 
+def _error_cov(err_var: np.ndarray, observed: np.ndarray, draws: bool) -> tuple[np.ndarray, bool]:
+    """Measurement error as ``(..., N, k, k)`` covariances and whether it was diagonal.
+
+    Single values: ``(N, k)`` variances or ``(N, k, k)`` covariances. Draws: ``(N, k)``,
+    ``(S, N, k)`` variances or ``(S, N, k, k)`` covariances.
+    """
+    n_tips, k = observed.shape
+    full_ndim = 4 if draws else 3
+    if err_var.ndim == full_ndim or (draws and err_var.ndim == 3 and err_var.shape[1:] != (n_tips, k)):
+        if err_var.shape[-3:] != (n_tips, k, k):
+            raise InputError(
+                f"a full measurement-error covariance must be (species x traits x traits) = "
+                f"({n_tips}, {k}, {k}) per draw; got {err_var.shape}"
+                + (" (pass one covariance for all draws as shape (1, N, k, k))" if draws else "")
+            )
+        if not np.all(np.isfinite(err_var)):
+            raise InputError("the measurement-error covariance contains NaN or infinite values; "
+                             "put 0 in the rows and columns of unobserved traits")
+        if not np.allclose(err_var, np.swapaxes(err_var, -1, -2), rtol=1e-10, atol=1e-12):
+            raise InputError("each species' measurement-error covariance must be symmetric")
+        # only the observed rows and columns enter the likelihood
+        mask = observed[:, :, None] & observed[:, None, :]
+        ev = np.linalg.eigvalsh(np.where(mask, err_var, 0.0))
+        scale = np.maximum(1.0, np.abs(ev).max(axis=-1, keepdims=True))
+        if np.any(ev < -1e-10 * scale):
+            raise InputError(
+                "a species' measurement-error covariance (observed traits) is not positive "
+                "semidefinite; check the error correlations (|r| <= 1) and variances"
+            )
+        return np.ascontiguousarray(err_var), False
+    if err_var.shape[-2:] != (n_tips, k) or err_var.ndim > (3 if draws else 2):
+        raise InputError(
+            f"err_var must be (species x traits) variances {observed.shape} or "
+            f"(species x traits x traits) covariances; got {err_var.shape}"
+        )
+    if not np.all(np.isfinite(err_var)) or np.any(err_var < 0):
+        raise InputError("measurement-error variances must be finite and >= 0")
+    full = np.zeros(err_var.shape + (k,))
+    idx = np.arange(k)
+    full[..., idx, idx] = err_var
+    return full, True
+
+
 def _prepare(parent, lengths, y, observed, R, E, err_var, mu, draws: bool = False):
     parent = np.ascontiguousarray(parent, dtype=np.int64)
     y = np.array(y, dtype=np.float64, copy=True, ndmin=2)
@@ -75,25 +118,22 @@ def _prepare(parent, lengths, y, observed, R, E, err_var, mu, draws: bool = Fals
     _check_tree(parent, lengths, n_tips)
     _check_cov("R", R, k, semidefinite=False)
     _check_cov("E", E, k, semidefinite=True)
-    if err_var.shape[-2:] != (n_tips, k):
-        raise InputError(f"err_var must have the shape of y {y.shape}; got {err_var.shape}")
-    if not np.all(np.isfinite(err_var)) or np.any(err_var < 0):
-        raise InputError("measurement-error variances must be finite and >= 0")
+    err, diagonal = _error_cov(err_var, observed, draws)
     if mu.shape[-1:] != (k,) or not np.all(np.isfinite(mu)):
         raise InputError(f"mu must hold {k} finite root means; got shape {mu.shape}")
     if not draws:
-        if lengths.ndim != 1 or R.ndim != 2 or E.ndim != 2 or err_var.ndim != 2 or mu.ndim != 1:
+        if lengths.ndim != 1 or R.ndim != 2 or E.ndim != 2 or mu.ndim != 1:
             raise InputError("lengths, R, E, err_var and mu must be single values, not draws")
-        _check_tips(parent, lengths, observed, E, err_var)
-    return parent, lengths, y, observed, R, E, err_var, mu
+        _check_tips(parent, lengths, observed, E, err)
+    return (parent, lengths, y, observed, R, E, err, mu), diagonal
 
 
-def _check_tips(parent, lengths, observed, E, err_var) -> None:
+def _check_tips(parent, lengths, observed, E, err) -> None:
     n_tips = observed.shape[0]
     bad = (lengths[:n_tips] == 0) & observed.any(axis=1)
     for i in np.flatnonzero(bad):
         o = observed[i]
-        S = E[np.ix_(o, o)] + np.diag(err_var[i, o])
+        S = E[np.ix_(o, o)] + err[i][np.ix_(o, o)]
         if np.linalg.eigvalsh(S).min() <= 0:
             raise InputError(
                 f"species {i} sits on a zero-length branch with no measurement error: its "
@@ -118,8 +158,10 @@ def loglik(parent, lengths, y, observed, R, E, err_var, mu) -> float:
     R, E : (k, k) float
         Evolutionary rate matrix (positive definite) and species-level covariance
         (positive semidefinite; zeros when absent).
-    err_var : (N, k) float
-        Measurement-error variances.
+    err_var : (N, k) or (N, k, k) float
+        Measurement-error variances, or each species' full error covariance
+        (symmetric, positive semidefinite on its observed traits; the rows and
+        columns of unobserved traits are ignored).
     mu : (k,) float
         Root mean.
 
@@ -127,7 +169,7 @@ def loglik(parent, lengths, y, observed, R, E, err_var, mu) -> float:
     -------
     float
     """
-    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
     return float(kernels.loglik_kernel(*args))
 
 
@@ -141,10 +183,15 @@ def loglik_and_grad(parent, lengths, y, observed, R, E, err_var, mu) -> tuple[fl
         Keys ``"lengths", "y", "R", "E", "err_var", "mu"``, same shapes as the
         inputs, zero at unobserved cells. ``grad["R"]`` and ``grad["E"]`` are
         symmetric matrix derivatives: a symmetric change ``dR`` changes ``logp`` by
-        ``sum(grad["R"] * dR)``.
+        ``sum(grad["R"] * dR)``. For a full ``(N, k, k)`` error covariance,
+        ``grad["err_var"]`` holds the partial derivative with respect to every entry
+        (symmetric, zero in the rows and columns of unobserved cells), so that too
+        is read as ``sum(grad["err_var"] * dS)``.
     """
-    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    args, diagonal = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
     logp, dl, dy, dR, dE, dev, dmu = kernels.value_and_grad_kernel(*args)
+    if diagonal:
+        dev = np.ascontiguousarray(np.diagonal(dev, axis1=1, axis2=2))
     grad = {"lengths": dl, "y": dy, "R": dR, "E": dE, "err_var": dev, "mu": dmu}
     return float(logp), grad
 
@@ -157,7 +204,7 @@ def loo_conditionals(
     Measurement error and ``E`` are included. Returns ``mean (N, k)`` and
     ``cov (N, k, k)``.
     """
-    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
     mean, cov, _, _ = kernels.loo_kernel(*args)
     return mean, cov
 
@@ -167,7 +214,7 @@ def loo_logdensity(parent, lengths, y, observed, R, E, err_var, mu) -> np.ndarra
 
     Zero for a species with nothing observed. Shape ``(N,)``.
     """
-    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
     return kernels.loo_kernel(*args)[2]
 
 
@@ -178,25 +225,27 @@ def loo_logdensity_draws(parent, lengths, y, observed, R, E, err_var, mu) -> np.
     ----------
     lengths : (S, n_nodes) or (n_nodes,)
     R, E : (S, k, k)
-    err_var : (S, N, k) or (N, k)
+    err_var : (N, k), (S, N, k) or (S, N, k, k)
+        Variances (diagonal error) or full error covariances; a single full
+        covariance shared by all draws is passed as ``(1, N, k, k)``.
     mu : (S, k)
 
     Returns
     -------
     (S, N) array; NaN for a draw whose likelihood cannot be evaluated.
     """
-    parent, lengths, y, observed, R, E, err_var, mu = _prepare(
+    (parent, lengths, y, observed, R, E, err, mu), _ = _prepare(
         parent, lengths, y, observed, R, E, err_var, mu, draws=True
     )
     if R.ndim != 3 or E.ndim != 3 or mu.ndim != 2:
         raise InputError("R and E must be (draws, k, k) and mu (draws, k)")
     S = R.shape[0]
     lengths2 = lengths.reshape(-1, lengths.shape[-1])
-    ev3 = err_var.reshape(-1, *err_var.shape[-2:])
-    for name, a in (("E", E), ("mu", mu), ("lengths", lengths2), ("err_var", ev3)):
+    err4 = err.reshape(-1, *err.shape[-3:])
+    for name, a in (("E", E), ("mu", mu), ("lengths", lengths2), ("err_var", err4)):
         if a.shape[0] not in ((S,) if name in ("E", "mu") else (1, S)):
             raise InputError(f"{name} has {a.shape[0]} draws but R has {S}")
-    return kernels.loo_logdens_draws_kernel(parent, lengths2, y, observed, R, E, ev3, mu)
+    return kernels.loo_logdens_draws_kernel(parent, lengths2, y, observed, R, E, err4, mu)
 
 
 def ancestral_states(
@@ -207,6 +256,6 @@ def ancestral_states(
     Returns ``mean (n_nodes, k)`` and ``cov (n_nodes, k, k)``; rows ``0..N-1`` are
     the latent true species means, the others the internal nodes.
     """
-    args = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
     mean, cov, _ = kernels.ancestral_kernel(*args)
     return mean, cov

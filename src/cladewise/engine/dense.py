@@ -18,6 +18,7 @@ from cladewise.data.trees import FlatTree, covariance
 __all__ = [
     "tip_covariance",
     "node_covariance",
+    "error_blocks",
     "dense_covariance",
     "loglik",
     "loo_conditionals",
@@ -57,6 +58,14 @@ def node_covariance(parent: np.ndarray, lengths: np.ndarray) -> np.ndarray:
     return C
 
 
+def error_blocks(err_var: np.ndarray) -> np.ndarray:
+    """Per-species error covariances ``(N, k, k)`` from ``(N, k)`` variances or as given."""
+    err_var = np.asarray(err_var, dtype=float)
+    if err_var.ndim == 3:
+        return err_var
+    return err_var[:, :, None] * np.eye(err_var.shape[1])[None, :, :]
+
+
 def dense_covariance(
     parent: np.ndarray,
     lengths: np.ndarray,
@@ -64,10 +73,14 @@ def dense_covariance(
     E: np.ndarray,
     err_var: np.ndarray,
 ) -> np.ndarray:
-    """Covariance of all observation cells: ``C (x) R + I (x) E + diag(err_var)``."""
-    n_tips, k = err_var.shape
+    """Covariance of all observation cells: ``C (x) R + I (x) E + blockdiag(S_i)``.
+
+    ``err_var`` is ``(N, k)`` variances (``S_i`` diagonal) or ``(N, k, k)``.
+    """
+    S = error_blocks(err_var)
+    n_tips, k = S.shape[:2]
     C = tip_covariance(parent, lengths, n_tips)
-    return np.kron(C, R) + np.kron(np.eye(n_tips), E) + np.diag(np.ravel(err_var))
+    return np.kron(C, R) + np.kron(np.eye(n_tips), E) + scipy.linalg.block_diag(*S)
 
 
 def loglik(parent, lengths, y, observed, R, E, err_var, mu) -> float:
@@ -88,7 +101,7 @@ def loo_conditionals(parent, lengths, y, observed, R, E, err_var, mu):
     cov (N, k, k), logdens (N,))`` where ``logdens`` is the log density of the
     species' observed cells (0 when it has none).
     """
-    n_tips, k = y.shape
+    n_tips, k = np.shape(y)
     cov = dense_covariance(parent, lengths, R, E, err_var)
     obs = np.ravel(observed).astype(bool)
     yv = np.ravel(y)

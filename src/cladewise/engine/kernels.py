@@ -29,9 +29,13 @@ and the Kalman update of ``N(m, V)`` by ``L`` (mean ``m + V g``, covariance
 
 Tips are handled in moment form, directly from their observations: the message a
 tip sends to its parent is the density of its observed cells given the parent's
-value, ``N(y_o; x_o, (t R + E + diag(err_var))[o, o])``. This stays finite when a
+value, ``N(y_o; x_o, (t R + E + S_c)[o, o])`` with ``S_c = err[c]`` the species'
+k x k measurement-error covariance: the rows and columns of unobserved cells are
+dropped, which is zero precision in those directions. This stays finite when a
 species has no measurement error (``S = 0``), where an information-form tip
-message would be infinite.
+message would be infinite. ``err`` is always ``(N, k, k)`` here; a diagonal error is
+passed with zero off-diagonals. The kernels read ``(err[i, j] + err[j, i]) / 2``, so
+``d_err`` is the exact partial derivative with respect to every entry.
 """
 
 from __future__ import annotations
@@ -240,7 +244,7 @@ def _observed_index(observed, i, idx):
 
 
 @njit(**_JIT)
-def upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, hs):
+def upward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs):
     """Pruning pass from the tips to the root; returns the log-likelihood.
 
     Fills, for every node ``v``: ``Jn[v], hn[v]`` the message at the node (sum of
@@ -277,8 +281,8 @@ def upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, 
                     ia = idx[a]
                     for b in range(q):
                         ib = idx[b]
-                        K[a, b] = t * R[ia, ib] + E[ia, ib]
-                    K[a, a] += err_var[v, ia]
+                        K[a, b] = (t * R[ia, ib] + E[ia, ib]
+                                   + 0.5 * (err[v, ia, ib] + err[v, ib, ia]))
                 logdet = chol_inv(K, q, W)
                 if math.isnan(logdet):
                     return -np.inf
@@ -357,8 +361,8 @@ def _internal_terms_py(v, t, Jn, hn, m, P, R, mode, M, piv, H, g, d_lengths, d_R
                 anc_cov[v, i, j] = Pv[i, j] - s
 
 
-def _tip_terms_py(c, t, y, observed, R, E, err_var, m, P, mode, idx, K, W, r, Wr,
-               d_lengths, d_y, d_R, d_E, d_err_var, d_mu, is_root,
+def _tip_terms_py(c, t, y, observed, R, E, err, m, P, mode, idx, K, W, r, Wr,
+               d_lengths, d_y, d_R, d_E, d_err, d_mu, is_root,
                loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov, k):
     """Gradient, LOO and ancestral terms of tip ``c`` given its outside ``N(m, P)``."""
     Pc = P[c]
@@ -367,8 +371,7 @@ def _tip_terms_py(c, t, y, observed, R, E, err_var, m, P, mode, idx, K, W, r, Wr
         for i in range(k):
             loo_mean[c, i] = mc[i]
             for j in range(k):
-                loo_cov[c, i, j] = Pc[i, j] + E[i, j]
-            loo_cov[c, i, i] += err_var[c, i]
+                loo_cov[c, i, j] = Pc[i, j] + E[i, j] + 0.5 * (err[c, i, j] + err[c, j, i])
     q = _observed_index(observed, c, idx)
     if q == 0:
         if mode & MODE_LOO:
@@ -382,8 +385,8 @@ def _tip_terms_py(c, t, y, observed, R, E, err_var, m, P, mode, idx, K, W, r, Wr
     for a in range(q):
         ia = idx[a]
         for b in range(q):
-            K[a, b] = Pc[ia, idx[b]] + E[ia, idx[b]]
-        K[a, a] += err_var[c, ia]
+            ib = idx[b]
+            K[a, b] = Pc[ia, ib] + E[ia, ib] + 0.5 * (err[c, ia, ib] + err[c, ib, ia])
     logdet = chol_inv(K, q, W)
     quad = 0.0
     for a in range(q):
@@ -406,7 +409,7 @@ def _tip_terms_py(c, t, y, observed, R, E, err_var, m, P, mode, idx, K, W, r, Wr
                 tr += R[ia, ib] * G
                 d_R[ia, ib] += t * G
                 d_E[ia, ib] += G
-            d_err_var[c, ia] = 0.5 * (Wr[a] * Wr[a] - W[a, a])
+                d_err[c, ia, ib] = G
             d_y[c, ia] = -Wr[a]
             if is_root:
                 d_mu[ia] = Wr[a]
@@ -432,8 +435,8 @@ _tip_terms = njit(**_JIT)(_tip_terms_py)
 
 
 @njit(**_JIT)
-def downward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, hs,
-             sufJ, sufh, m, P, mode, d_lengths, d_y, d_R, d_E, d_err_var, d_mu,
+def downward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs,
+             sufJ, sufh, m, P, mode, d_lengths, d_y, d_R, d_E, d_err, d_mu,
              loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     """Pass from the root to the tips after :func:`upward`.
 
@@ -461,7 +464,7 @@ def downward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js
         d_y[:] = 0.0
         d_R[:] = 0.0
         d_E[:] = 0.0
-        d_err_var[:] = 0.0
+        d_err[:] = 0.0
         d_mu[:] = 0.0
     sufJ[:] = 0.0
     sufh[:] = 0.0
@@ -473,8 +476,8 @@ def downward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js
         for j in range(k):
             P[root, i, j] = t * R[i, j]
     if root < ntip:
-        _tip_terms(root, t, y, observed, R, E, err_var, m, P, mode, idx, K, W, r, Wr,
-                   d_lengths, d_y, d_R, d_E, d_err_var, d_mu, True,
+        _tip_terms(root, t, y, observed, R, E, err, m, P, mode, idx, K, W, r, Wr,
+                   d_lengths, d_y, d_R, d_E, d_err, d_mu, True,
                    loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov, k)
     elif want_internal:
         _internal_terms(root, t, Jn, hn, m, P, R, mode, M, piv, H, g, d_lengths, d_R,
@@ -533,8 +536,8 @@ def downward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js
                 Pc[i, j] = s
                 Pc[j, i] = s
         if c < ntip:
-            _tip_terms(c, t, y, observed, R, E, err_var, m, P, mode, idx, K, W, r, Wr,
-                       d_lengths, d_y, d_R, d_E, d_err_var, d_mu, False,
+            _tip_terms(c, t, y, observed, R, E, err, m, P, mode, idx, K, W, r, Wr,
+                       d_lengths, d_y, d_R, d_E, d_err, d_mu, False,
                        loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov, k)
         elif want_internal:
             _internal_terms(c, t, Jn, hn, m, P, R, mode, M, piv, H, g, d_lengths, d_R,
@@ -576,7 +579,7 @@ def _absorb2(j00, j01, j11, h0, h1, v00, v01, v10, v11, m0, m1):
 
 
 @njit(**_JIT)
-def _upward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq):
+def _upward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
     """:func:`upward` for k = 2 on the workspace of :func:`_workspace2`.
 
     ``Pm[v - N, 0:5]`` accumulates the message at internal node ``v`` (sum of its
@@ -614,9 +617,9 @@ def _upward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq):
             h0 = 0.0
             h1 = 0.0
             if o0 and o1:
-                k00 = t * r00 + e00 + err_var[v, 0]
-                k01 = t * r10 + e10
-                k11 = t * r11 + e11 + err_var[v, 1]
+                k00 = t * r00 + e00 + err[v, 0, 0]
+                k01 = t * r10 + e10 + 0.5 * (err[v, 0, 1] + err[v, 1, 0])
+                k11 = t * r11 + e11 + err[v, 1, 1]
                 det = k00 * k11 - k01 * k01
                 if not (k00 > 0.0 and det > 0.0):
                     return -np.inf
@@ -630,14 +633,14 @@ def _upward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq):
                 h1 = J01 * y0 + J11 * y1
                 total += -0.5 * (h0 * y0 + h1 * y1) - 0.5 * math.log(det) - _LOG_2PI
             elif o0:
-                k00 = t * r00 + e00 + err_var[v, 0]
+                k00 = t * r00 + e00 + err[v, 0, 0]
                 if not k00 > 0.0:
                     return -np.inf
                 J00 = 1.0 / k00
                 h0 = J00 * y[v, 0]
                 total += -0.5 * h0 * y[v, 0] - 0.5 * math.log(k00) - 0.5 * _LOG_2PI
             elif o1:
-                k11 = t * r11 + e11 + err_var[v, 1]
+                k11 = t * r11 + e11 + err[v, 1, 1]
                 if not k11 > 0.0:
                     return -np.inf
                 J11 = 1.0 / k11
@@ -688,8 +691,8 @@ def _upward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq):
 
 
 @njit(**_JIT)
-def _tips2(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y, d_R, d_E,
-           d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
+def _tips2(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
+           d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     """:func:`_tip_terms` of every tip for k = 2, in one sequential sweep.
 
     Unobserved cells get zero rows in ``W`` and ``W r``, which makes their terms
@@ -716,14 +719,15 @@ def _tips2(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y
         p00 = Sq[c, 2]
         p01 = Sq[c, 3]
         p11 = Sq[c, 4]
-        s00 = p00 + e00 + err_var[c, 0]
-        s11 = p11 + e11 + err_var[c, 1]
+        s00 = p00 + e00 + err[c, 0, 0]
+        s11 = p11 + e11 + err[c, 1, 1]
+        x01 = 0.5 * (err[c, 0, 1] + err[c, 1, 0])
         if mode & MODE_LOO:
             loo_mean[c, 0] = m0
             loo_mean[c, 1] = m1
             loo_cov[c, 0, 0] = s00
-            loo_cov[c, 0, 1] = p01 + e01
-            loo_cov[c, 1, 0] = p01 + e10
+            loo_cov[c, 0, 1] = p01 + e01 + x01
+            loo_cov[c, 1, 0] = p01 + e10 + x01
             loo_cov[c, 1, 1] = s11
         o0 = observed[c, 0]
         o1 = observed[c, 1]
@@ -735,7 +739,7 @@ def _tips2(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y
         logdet = 0.0
         q = 0
         if o0 and o1:
-            s01 = p01 + e10
+            s01 = p01 + e10 + x01
             det = s00 * s11 - s01 * s01
             inv = 1.0 / det
             w00 = s11 * inv
@@ -771,8 +775,10 @@ def _tips2(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y
             dE00 += G00
             dE01 += G01
             dE11 += G11
-            d_err_var[c, 0] = G00
-            d_err_var[c, 1] = G11
+            d_err[c, 0, 0] = G00
+            d_err[c, 0, 1] = G01
+            d_err[c, 1, 0] = G01
+            d_err[c, 1, 1] = G11
             d_y[c, 0] = -a0
             d_y[c, 1] = -a1
             if c == root:
@@ -802,8 +808,8 @@ def _tips2(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y
 
 
 @njit(**_JIT)
-def _downward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
-               d_lengths, d_y, d_R, d_E, d_err_var, d_mu, loo_mean, loo_cov, loo_logdens,
+def _downward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
+               d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                anc_mean, anc_cov):
     """:func:`downward` for k = 2 after :func:`_upward2`.
 
@@ -822,7 +828,7 @@ def _downward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
         d_y[:] = 0.0
         d_R[:] = 0.0
         d_E[:] = 0.0
-        d_err_var[:] = 0.0
+        d_err[:] = 0.0
         d_mu[:] = 0.0
     r00 = R[0, 0]
     r10 = R[1, 0]
@@ -929,8 +935,8 @@ def _downward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
         d_R[0, 1] += dR01
         d_R[1, 0] += dR01
         d_R[1, 1] += dR11
-    _tips2(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y, d_R, d_E,
-           d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
+    _tips2(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
+           d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
 
 
 # --------------------------------------------------------------------- k = 1 fast path
@@ -955,7 +961,7 @@ def _absorb1(j, h, v, m):
 
 
 @njit(**_JIT)
-def _upward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq):
+def _upward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
     """:func:`upward` for k = 1 on the workspace of :func:`_workspace1`.
 
     ``Pm[v - N, 0:2]`` accumulates the message at internal node ``v``; ``Sq[v, 0:2]``
@@ -980,7 +986,7 @@ def _upward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq):
             J = 0.0
             h = 0.0
             if observed[v, 0]:
-                kv = t * r + e + err_var[v, 0]
+                kv = t * r + e + err[v, 0, 0]
                 if not kv > 0.0:
                     return -np.inf
                 J = 1.0 / kv
@@ -1014,8 +1020,8 @@ def _upward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq):
 
 
 @njit(**_JIT)
-def _tips1(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y, d_R, d_E,
-           d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
+def _tips1(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
+           d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     """:func:`_tip_terms` of every tip for k = 1, in one sequential sweep."""
     ntip = y.shape[0]
     root = parent.shape[0] - 1
@@ -1026,7 +1032,7 @@ def _tips1(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y
     for c in range(ntip):
         m = Sq[c, 0]
         p = Sq[c, 1]
-        s = p + e + err_var[c, 0]
+        s = p + e + err[c, 0, 0]
         if mode & MODE_LOO:
             loo_mean[c, 0] = m
             loo_cov[c, 0, 0] = s
@@ -1050,22 +1056,22 @@ def _tips1(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y
             d_lengths[c] = r * G
             dR += lengths[c] * G
             dE += G
-            d_err_var[c, 0] = G
+            d_err[c, 0, 0] = G
             d_y[c, 0] = -a
             if c == root:
                 d_mu[0] = a
         if mode & MODE_ANCESTRAL:
             anc_mean[c, 0] = m + p * a
             # p - p w p, as p (s - p) / s without cancellation
-            anc_cov[c, 0, 0] = p * ((e + err_var[c, 0]) * w)
+            anc_cov[c, 0, 0] = p * ((e + err[c, 0, 0]) * w)
     if mode & MODE_GRAD:
         d_R[0, 0] += dR
         d_E[0, 0] += dE
 
 
 @njit(**_JIT)
-def _downward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
-               d_lengths, d_y, d_R, d_E, d_err_var, d_mu, loo_mean, loo_cov, loo_logdens,
+def _downward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
+               d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                anc_mean, anc_cov):
     """:func:`downward` for k = 1 after :func:`_upward1`.
 
@@ -1082,7 +1088,7 @@ def _downward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
         d_y[:] = 0.0
         d_R[:] = 0.0
         d_E[:] = 0.0
-        d_err_var[:] = 0.0
+        d_err[:] = 0.0
         d_mu[:] = 0.0
     r = R[0, 0]
     dR = 0.0
@@ -1135,8 +1141,8 @@ def _downward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
         Pm[w, 1] = 0.0
     if mode & MODE_GRAD:
         d_R[0, 0] += dR
-    _tips1(parent, lengths, y, observed, R, E, err_var, Sq, mode, d_lengths, d_y, d_R, d_E,
-           d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
+    _tips1(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
+           d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
 
 
 # --------------------------------------------------------------------- drivers
@@ -1152,45 +1158,45 @@ def _workspace(n, k):
 
 
 @njit(**_JIT)
-def loglik_kernel(parent, lengths, y, observed, R, E, err_var, mu):
+def loglik_kernel(parent, lengths, y, observed, R, E, err, mu):
     """Log-likelihood only (one upward pass)."""
     n = parent.shape[0]
     k = y.shape[1]
     if k == 2:
-        return _upward2(parent, lengths, y, observed, R, E, err_var, mu,
+        return _upward2(parent, lengths, y, observed, R, E, err, mu,
                         np.empty((n - y.shape[0], 5)), np.empty((0, 10)))
     if k == 1:
-        return _upward1(parent, lengths, y, observed, R, E, err_var, mu,
+        return _upward1(parent, lengths, y, observed, R, E, err, mu,
                         np.empty((n - y.shape[0], 2)), np.empty((0, 4)))
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
-    return upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, hs)
+    return upward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs)
 
 
 @njit(**_JIT)
-def _run(parent, lengths, y, observed, R, E, err_var, mu, mode, d_lengths, d_y, d_R,
-         d_E, d_err_var, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
+def _run(parent, lengths, y, observed, R, E, err, mu, mode, d_lengths, d_y, d_R,
+         d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     n = parent.shape[0]
     k = y.shape[1]
     if k == 2:
         Pm, Sq = _workspace2(n, y.shape[0])
-        logp = _upward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq)
+        logp = _upward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq)
         if not np.isfinite(logp):
             return logp
-        _downward2(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
-                   d_lengths, d_y, d_R, d_E, d_err_var, d_mu, loo_mean, loo_cov,
+        _downward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
+                   d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov,
                    loo_logdens, anc_mean, anc_cov)
         return logp
     if k == 1:
         Pm, Sq = _workspace1(n, y.shape[0])
-        logp = _upward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq)
+        logp = _upward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq)
         if not np.isfinite(logp):
             return logp
-        _downward1(parent, lengths, y, observed, R, E, err_var, mu, Pm, Sq, mode,
-                   d_lengths, d_y, d_R, d_E, d_err_var, d_mu, loo_mean, loo_cov,
+        _downward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
+                   d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov,
                    loo_logdens, anc_mean, anc_cov)
         return logp
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
-    logp = upward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, hs)
+    logp = upward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs)
     if not np.isfinite(logp):
         return logp
     # the upward pass is done with Jn's role as an accumulator, reuse nothing else
@@ -1198,17 +1204,17 @@ def _run(parent, lengths, y, observed, R, E, err_var, mu, mode, d_lengths, d_y, 
     sufh = np.empty((n, k))
     m = np.empty((n, k))
     P = np.empty((n, k, k))
-    downward(parent, lengths, y, observed, R, E, err_var, mu, Jn, hn, Ju, hu, Js, hs,
-             sufJ, sufh, m, P, mode, d_lengths, d_y, d_R, d_E, d_err_var, d_mu,
+    downward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs,
+             sufJ, sufh, m, P, mode, d_lengths, d_y, d_R, d_E, d_err, d_mu,
              loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
     return logp
 
 
 @njit(**_JIT)
-def value_and_grad_kernel(parent, lengths, y, observed, R, E, err_var, mu):
+def value_and_grad_kernel(parent, lengths, y, observed, R, E, err, mu):
     """Log-likelihood and its gradient.
 
-    Returns ``(logp, d_lengths, d_y, d_R, d_E, d_err_var, d_mu)``; the gradients
+    Returns ``(logp, d_lengths, d_y, d_R, d_E, d_err, d_mu)``; the gradients
     with respect to the symmetric matrices ``R`` and ``E`` are symmetric (the
     derivative along a symmetric perturbation of an off-diagonal pair is
     ``d[i, j] + d[j, i]``). Gradients are zero when ``logp`` is not finite.
@@ -1220,25 +1226,25 @@ def value_and_grad_kernel(parent, lengths, y, observed, R, E, err_var, mu):
     d_y = np.zeros((ntip, k))
     d_R = np.zeros((k, k))
     d_E = np.zeros((k, k))
-    d_err_var = np.zeros((ntip, k))
+    d_err = np.zeros((ntip, k, k))
     d_mu = np.zeros(k)
     e1 = np.empty((0, k))
     e2 = np.empty((0, k, k))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, E, err_var, mu, MODE_GRAD, d_lengths, d_y,
-                d_R, d_E, d_err_var, d_mu, e1, e2, e0, e1, e2)
+    logp = _run(parent, lengths, y, observed, R, E, err, mu, MODE_GRAD, d_lengths, d_y,
+                d_R, d_E, d_err, d_mu, e1, e2, e0, e1, e2)
     if not np.isfinite(logp):
         d_lengths[:] = 0.0
         d_y[:] = 0.0
         d_R[:] = 0.0
         d_E[:] = 0.0
-        d_err_var[:] = 0.0
+        d_err[:] = 0.0
         d_mu[:] = 0.0
-    return logp, d_lengths, d_y, d_R, d_E, d_err_var, d_mu
+    return logp, d_lengths, d_y, d_R, d_E, d_err, d_mu
 
 
 @njit(**_JIT)
-def loo_kernel(parent, lengths, y, observed, R, E, err_var, mu):
+def loo_kernel(parent, lengths, y, observed, R, E, err, mu):
     """Leave-one-species-out predictive of every tip: ``(mean, cov, logdens, logp)``."""
     n = parent.shape[0]
     ntip = y.shape[0]
@@ -1251,13 +1257,13 @@ def loo_kernel(parent, lengths, y, observed, R, E, err_var, mu):
     e0 = np.empty(0)
     ek = np.empty((k, k))
     ev = np.empty(k)
-    logp = _run(parent, lengths, y, observed, R, E, err_var, mu, MODE_LOO, e0, e1, ek, ek,
-                e1, ev, loo_mean, loo_cov, loo_logdens, e1, e2)
+    logp = _run(parent, lengths, y, observed, R, E, err, mu, MODE_LOO, e0, e1, ek, ek,
+                e2, ev, loo_mean, loo_cov, loo_logdens, e1, e2)
     return loo_mean, loo_cov, loo_logdens, logp
 
 
 @njit(**_JIT)
-def ancestral_kernel(parent, lengths, y, observed, R, E, err_var, mu):
+def ancestral_kernel(parent, lengths, y, observed, R, E, err, mu):
     """Posterior mean and covariance of every node's latent value: ``(mean, cov, logp)``."""
     n = parent.shape[0]
     k = y.shape[1]
@@ -1268,16 +1274,16 @@ def ancestral_kernel(parent, lengths, y, observed, R, E, err_var, mu):
     e0 = np.empty(0)
     ek = np.empty((k, k))
     ev = np.empty(k)
-    logp = _run(parent, lengths, y, observed, R, E, err_var, mu, MODE_ANCESTRAL, e0, e1, ek,
-                ek, e1, ev, e1, e2, e0, anc_mean, anc_cov)
+    logp = _run(parent, lengths, y, observed, R, E, err, mu, MODE_ANCESTRAL, e0, e1, ek,
+                ek, e2, ev, e1, e2, e0, anc_mean, anc_cov)
     return anc_mean, anc_cov, logp
 
 
 @njit(**_JIT)
-def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err_var, mu):
+def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err, mu):
     """Leave-one-species-out log densities for many parameter draws.
 
-    ``lengths`` is (S_l, n_nodes), ``err_var`` (S_e, N, k) with S_l, S_e in {1, S};
+    ``lengths`` is (S_l, n_nodes), ``err`` (S_e, N, k, k) with S_l, S_e in {1, S};
     ``R``, ``E`` are (S, k, k) and ``mu`` (S, k). Returns (S, N); a draw whose
     likelihood cannot be evaluated gets NaN.
     """
@@ -1297,25 +1303,25 @@ def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err_var, mu):
         Pm, Sq = _workspace2(n, ntip)
         for s in range(S):
             ln = lengths[s if lengths.shape[0] > 1 else 0]
-            evs = err_var[s if err_var.shape[0] > 1 else 0]
+            evs = err[s if err.shape[0] > 1 else 0]
             logp = _upward2(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq)
             if not np.isfinite(logp):
                 out[s, :] = np.nan
                 continue
             _downward2(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq, MODE_LOO,
-                       e0, e1, ek, ek, e1, ev, loo_mean, loo_cov, out[s], e1, e2)
+                       e0, e1, ek, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
         return out
     if k == 1:
         Pm, Sq = _workspace1(n, ntip)
         for s in range(S):
             ln = lengths[s if lengths.shape[0] > 1 else 0]
-            evs = err_var[s if err_var.shape[0] > 1 else 0]
+            evs = err[s if err.shape[0] > 1 else 0]
             logp = _upward1(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq)
             if not np.isfinite(logp):
                 out[s, :] = np.nan
                 continue
             _downward1(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq, MODE_LOO,
-                       e0, e1, ek, ek, e1, ev, loo_mean, loo_cov, out[s], e1, e2)
+                       e0, e1, ek, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
         return out
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
     sufJ = np.empty((n, k, k))
@@ -1324,12 +1330,12 @@ def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err_var, mu):
     P = np.empty((n, k, k))
     for s in range(S):
         ln = lengths[s if lengths.shape[0] > 1 else 0]
-        evs = err_var[s if err_var.shape[0] > 1 else 0]
+        evs = err[s if err.shape[0] > 1 else 0]
         logp = upward(parent, ln, y, observed, R[s], E[s], evs, mu[s], Jn, hn, Ju, hu, Js, hs)
         if not np.isfinite(logp):
             out[s, :] = np.nan
             continue
         downward(parent, ln, y, observed, R[s], E[s], evs, mu[s], Jn, hn, Ju, hu, Js, hs,
-                 sufJ, sufh, m, P, MODE_LOO, e0, e1, ek, ek, e1, ev,
+                 sufJ, sufh, m, P, MODE_LOO, e0, e1, ek, ek, e2, ev,
                  loo_mean, loo_cov, out[s], e1, e2)
     return out

@@ -21,19 +21,22 @@ from cladewise.engine import kernels
 
 __all__ = ["TreeLoglik", "tree_loglik"]
 
-_FLOAT_INPUTS = (1, 2, 4, 5, 6, 7)  # lengths, y, R, E, err_var, mu
+_FLOAT_INPUTS = (1, 2, 4, 5, 6, 7)  # lengths, y, R, E, err_cov, mu
 
 
 class TreeLoglik(Op):
-    """``(parent, lengths, y, observed, R, E, err_var, mu) -> (logp, d_lengths, d_y,
-    d_R, d_E, d_err_var, d_mu)``.
+    """``(parent, lengths, y, observed, R, E, err_cov, mu) -> (logp, d_lengths, d_y,
+    d_R, d_E, d_err_cov, d_mu)``.
 
-    Unobserved cells of ``y`` may hold any finite value; they are ignored.
+    ``err_cov`` is each species' ``k x k`` measurement-error covariance,
+    ``(N, k, k)``; :func:`tree_loglik` builds it from variances when the error is
+    diagonal. Unobserved cells of ``y`` may hold any finite value; they are ignored,
+    as are the rows and columns of ``err_cov`` that belong to them.
     """
 
     __props__ = ()
 
-    def make_node(self, parent, lengths, y, observed, R, E, err_var, mu):
+    def make_node(self, parent, lengths, y, observed, R, E, err_cov, mu):
         parent = pt.as_tensor_variable(parent)
         if parent.dtype != "int64":
             parent = pt.cast(parent, "int64")
@@ -41,9 +44,9 @@ class TreeLoglik(Op):
         if observed.dtype != "bool":
             observed = pt.neq(observed, 0)
         floats = [
-            pt.as_tensor_variable(v).astype("float64") for v in (lengths, y, R, E, err_var, mu)
+            pt.as_tensor_variable(v).astype("float64") for v in (lengths, y, R, E, err_cov, mu)
         ]
-        lengths, y, R, E, err_var, mu = floats
+        lengths, y, R, E, err_cov, mu = floats
         for v, nd, name in (
             (parent, 1, "parent"),
             (lengths, 1, "lengths"),
@@ -51,17 +54,17 @@ class TreeLoglik(Op):
             (observed, 2, "observed"),
             (R, 2, "R"),
             (E, 2, "E"),
-            (err_var, 2, "err_var"),
+            (err_cov, 3, "err_cov"),
             (mu, 1, "mu"),
         ):
             if v.ndim != nd:
                 raise TypeError(f"{name} must have {nd} dimensions, got {v.ndim}")
-        inputs = [parent, lengths, y, observed, R, E, err_var, mu]
+        inputs = [parent, lengths, y, observed, R, E, err_cov, mu]
         outputs = [pt.scalar(dtype="float64")] + [v.type() for v in floats]
         return Apply(self, inputs, outputs)
 
     def perform(self, node, inputs, output_storage):
-        parent, lengths, y, observed, R, E, err_var, mu = inputs
+        parent, lengths, y, observed, R, E, err_cov, mu = inputs
         res = kernels.value_and_grad_kernel(
             np.ascontiguousarray(parent),
             np.ascontiguousarray(lengths),
@@ -69,7 +72,7 @@ class TreeLoglik(Op):
             np.ascontiguousarray(observed),
             np.ascontiguousarray(R),
             np.ascontiguousarray(E),
-            np.ascontiguousarray(err_var),
+            np.ascontiguousarray(err_cov),
             np.ascontiguousarray(mu),
         )
         output_storage[0][0] = np.asarray(res[0], dtype=np.float64)
@@ -106,12 +109,20 @@ def tree_loglik(parent, lengths, y, observed, R, E, err_var, mu):
     """Log-likelihood of the tree model as a PyTensor scalar.
 
     Usable as ``pm.Potential("loglik", tree_loglik(...))``; differentiable with
-    respect to ``lengths``, ``y``, ``R``, ``E``, ``err_var`` and ``mu``. ``parent``
+    respect to ``lengths``, ``y``, ``R``, ``E``, ``err_var`` and ``mu``. ``err_var``
+    is either ``(N, k)`` measurement-error variances or ``(N, k, k)`` full
+    per-species error covariances (symmetric; the rows and columns of unobserved
+    cells are ignored). ``parent``
     (int) and ``observed`` (bool) are data and may be ``pm.Data``. Unobserved cells
     of ``y`` may hold any finite value (fill them with 0). Inputs are trusted:
     validate them once beforehand (e.g. with :func:`cladewise.engine.loglik`).
     Returns ``-inf`` when a tip's observation covariance is not positive definite.
     """
+    err_var = pt.as_tensor_variable(err_var).astype("float64")
+    if err_var.ndim == 2:
+        # diagonal error: the kernels read the same k x k layout either way
+        k = err_var.shape[1]
+        err_var = err_var[:, :, None] * pt.eye(k)[None, :, :]
     return _tree_loglik_op(parent, lengths, y, observed, R, E, err_var, mu)[0]
 
 
@@ -120,7 +131,7 @@ def _numba_funcify_tree_loglik(op, node, **kwargs):
     kernel = kernels.value_and_grad_kernel
 
     @numba_basic.numba_njit
-    def tree_loglik_numba(parent, lengths, y, observed, R, E, err_var, mu):
+    def tree_loglik_numba(parent, lengths, y, observed, R, E, err_cov, mu):
         logp, dl, dy, dR, dE, dev, dmu = kernel(
             np.ascontiguousarray(parent),
             np.ascontiguousarray(lengths),
@@ -128,7 +139,7 @@ def _numba_funcify_tree_loglik(op, node, **kwargs):
             np.ascontiguousarray(observed),
             np.ascontiguousarray(R),
             np.ascontiguousarray(E),
-            np.ascontiguousarray(err_var),
+            np.ascontiguousarray(err_cov),
             np.ascontiguousarray(mu),
         )
         return np.array(logp), dl, dy, dR, dE, dev, dmu

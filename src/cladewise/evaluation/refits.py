@@ -275,7 +275,7 @@ def loo_clades(
         masks.append(m)
     for s in range(S):
         y = d["y"][s] if per_draw_y else d["y"][0]
-        args = (d["lengths"][s], d["R"][s], d["E"][s], ev[s] if ev.ndim == 3 else ev, d["mu"][s])
+        args = (d["lengths"][s], d["R"][s], d["E"][s], ev[s] if ev.ndim >= 3 else ev, d["mu"][s])
         full = loglik(parent, args[0], y, obs, args[1], args[2], args[3], args[4])
         for g, m in enumerate(masks):
             out[s, g] = full - loglik(parent, args[0], y, m, args[1], args[2], args[3], args[4])

@@ -180,6 +180,7 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
     evolution on the tree, species-level deviation and measurement error.
     """
     from cladewise.model.simulate import simulate_traits
+    from cladewise.model.within_species import draw_errors
 
     d, (nc, nd) = engine_draws(built, idata, engine)
     rng = np.random.default_rng(seed)
@@ -192,7 +193,7 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
     for a, s in enumerate(pick):
         t = tree.with_lengths(d["lengths"][s])
         x = simulate_traits(t, d["R"][s], d["mu"][s], E=d["E"][s], rng=rng)
-        x = x + rng.standard_normal((n, k)) * np.sqrt(d["err_var"][s])
+        x = x + draw_errors(d["err_var"][s], rng)
         if is_regression:
             # residual + fitted value: y = X beta + e
             fitted = np.where(built.observed, built.y, 0.0) - d["y"][s]
@@ -256,7 +257,7 @@ def _summarise(idata: az.InferenceData, built: BuiltModel | None, var_names: lis
 
 # --------------------------------------------------------------------------- fit
 def _describe(built: BuiltModel) -> str:
-    return describe_model(built.spec)
+    return describe_model(built.spec, full_within="within_corr" in built.model.named_vars)
 
 
 def finish_fit(

@@ -27,10 +27,14 @@ phylogenetic share of variance per trait, ``phylo_share = R_jj t / (R_jj t + E_j
 with t the mean root-to-tip distance of the (transformed) tree.
 
 Measurement error: ``none``; ``se`` (known standard errors from the table, variance
-``se^2``); ``specimens`` (a within-species variance per species and trait, partially
-pooled across species on the log scale; each species' sample variance s^2 from n >= 2
+``se^2``, independent across traits unless ``error_correlation`` is given);
+``specimens`` (a within-species variance per species and trait, partially pooled
+across species on the log scale; each species' sample variance s^2 from n >= 2
 specimens adds the likelihood term ``(n-1) s^2 / sigma_w^2 ~ chi^2(n-1)``, and the
-error variance of the species mean is ``sigma_w^2 / n``).
+error variance of the species mean is ``sigma_w^2 / n``). With two or more traits
+and the specimen rows, the specimens model estimates the full within-species
+covariance (shared correlation ``within_corr``, Wishart terms, correlated errors of
+the means): see :mod:`cladewise.model.within_species`.
 
 Default priors are weakly informative and scaled to the data (see :mod:`cladewise.model.priors`
 and :func:`build_model`); every prior used is listed in ``BuiltModel.priors``.
@@ -51,6 +55,7 @@ import pytensor.tensor as pt
 from cladewise.config.analysis import KINDS, MEASUREMENT_ERROR, MODEL
 from cladewise.config.tables import read_table
 from cladewise.errors import InputError
+from cladewise.model import within_species as ws
 from cladewise.model.evolution import (
     MODELS,
     check_model_name,
@@ -101,6 +106,9 @@ class ModelData:
         Number of specimens behind each mean.
     sample_var : DataFrame, optional
         Within-species sample variance (NaN where fewer than 2 specimens).
+    specimens : DataFrame, optional
+        The specimen rows (column ``species`` and one per trait), which give the
+        within-species covariance between traits.
     notes : list of str
         Plain-language notes gathered on the way (dropped species, imputed errors).
     """
@@ -111,6 +119,7 @@ class ModelData:
     n: pd.DataFrame | None = None
     sample_var: pd.DataFrame | None = None
     notes: list[str] = field(default_factory=list)
+    specimens: pd.DataFrame | None = None
 
     def __post_init__(self) -> None:
         if list(self.values.index) != list(self.tree.tip_names):
@@ -139,6 +148,7 @@ class ModelData:
             n=frame(getattr(td, "n", None)),
             sample_var=frame(getattr(td, "within_var", None)),
             notes=list(getattr(match, "notes", []) or []),
+            specimens=getattr(td, "specimens", None),
         )
 
 
@@ -154,6 +164,7 @@ class ModelSpec:
     ou_root: str = "fixed"
     measurement_error: str = "none"
     species_covariance: bool = False
+    error_correlation: Any = None
     priors: dict[str, Any] = field(default_factory=dict)
     fixed: dict[str, float] = field(default_factory=dict)
 
@@ -200,6 +211,7 @@ class ModelSpec:
                 )
             if not isinstance(value, (int, float)):
                 raise InputError(f"[model.fixed] {key} must be a number")
+        _check_error_correlation_spec(self)
         bad = sorted(set(self.priors) - set(PRIOR_KEYS))
         if bad:
             raise InputError(
@@ -307,7 +319,7 @@ def _likelihood(tree: FlatTree, parent, lengths, y, observed, R, E, err_var, mu,
     Z = _path_matrix(tree)
     C = pt.dot(Z * lengths[None, :], Z.T)
     n, k = observed.shape
-    full = pt.linalg.kron(C, R) + pt.linalg.kron(pt.eye(n), E) + pt.diag(pt.flatten(err_var))
+    full = pt.linalg.kron(C, R) + pt.linalg.kron(pt.eye(n), E) + _error_blocks(err_var, n, k)
     idx = np.flatnonzero(observed.ravel())
     cov = full[idx][:, idx]
     mean = pt.flatten(pt.outer(pt.ones(n), mu))[idx]
@@ -472,6 +484,28 @@ def _regression_data(data: ModelData, spec: ModelSpec):
     return yv, observed, [response], X, predictors, [err_col]
 
 
+def _check_error_correlation_spec(spec: ModelSpec) -> None:
+    if spec.error_correlation is None:
+        return
+    if spec.measurement_error != "se":
+        raise InputError(
+            "[model] error_correlation is only used with measurement_error = 'se' (species means with "
+            "standard errors); with specimen rows the within-species correlation is estimated"
+        )
+    if spec.kind == "regression":
+        raise InputError("[model] error_correlation applies to kind = 'correlated' or 'independent', "
+                         "not to a regression (its response is a single trait)")
+    ws.check_error_correlation(spec.error_correlation, len(spec.traits))
+
+
+def _error_blocks(err_var, n: int, k: int):
+    """blockdiag of the species' error covariances (dense check only)."""
+    if err_var.ndim == 2:
+        return pt.diag(pt.flatten(err_var))
+    # [i, a, j, b] = delta_ij S_i[a, b]
+    return (pt.eye(n)[:, None, :, None] * err_var[:, :, None, :]).reshape((n * k, n * k))
+
+
 def _measurement_error(spec, data, cols, observed, priors, notes):
     n, k = observed.shape
     mode = spec.measurement_error
@@ -499,8 +533,20 @@ def _measurement_error(spec, data, cols, observed, priors, notes):
                 )
                 se = np.where(lack, fill, se)
             out[:, j] = np.where(observed[:, j], se**2, 0.0)
-        priors.append(PriorInfo("measurement error", "known: squared standard errors from the table", "as given"))
-        return pm.Data("obs_err_var", out)
+        rho = ws.error_correlation_matrix(spec.error_correlation, k) if k >= 2 else None
+        if rho is None:
+            priors.append(PriorInfo("measurement error", "known: squared standard errors from the table", "as given"))
+            return pm.Data("obs_err_var", out)
+        priors.append(PriorInfo("measurement error", "known: standard errors from the table, correlated across "
+                                "traits by [model] error_correlation", "as given"))
+        return ws.se_error_covariance(pm.Data("obs_err_var", out), rho)
+    if k >= 2 and data.specimens is not None:
+        # traits measured on the same specimens: full within-species covariance
+        stats = ws.specimen_statistics(data.specimens, data.species, cols)
+        return ws.within_species_error(stats, observed, cols, priors, PriorInfo)
+    if k >= 2:
+        notes.append("no specimen rows were given, only per-trait variances: the errors of the species "
+                     "means are treated as independent across traits")
     # specimens: partially pooled within-species variances
     if data.n is None or data.sample_var is None:
         raise InputError(

@@ -54,14 +54,18 @@ def measurement_error_description(mode: str) -> MeasurementErrorDescription:
     return MEASUREMENT_ERROR_DESCRIPTIONS.get(str(mode)) or MeasurementErrorDescription(str(mode), str(mode))
 
 
-def describe_model(spec: Any) -> str:
+def describe_model(spec: Any, full_within: bool = False) -> str:
     """One line on what a model spec fits (the ``description`` of a fit).
 
     ``spec`` needs ``kind``, ``traits``, ``formula``, ``evolution``,
-    ``measurement_error`` and ``species_covariance`` (a ``ModelSpec``).
+    ``measurement_error`` and ``species_covariance`` (a ``ModelSpec``);
+    ``full_within`` says the model estimates a within-species covariance between
+    traits (specimen rows, two or more traits). The error assumption is always stated.
     """
+    from cladewise.model.within_species import describe as describe_error
+
     evo = evolution_description(spec.evolution).name
-    me = measurement_error_description(spec.measurement_error).summary
+    me = describe_error(spec.measurement_error, getattr(spec, "error_correlation", None), full_within)
     if spec.kind == "regression":
         head = f"phylogenetic regression {spec.formula} with {evo} residuals"
     elif spec.kind == "correlated":
