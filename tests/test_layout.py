@@ -228,8 +228,6 @@ def _too_long() -> list[str]:
     return long
 
 
-@pytest.mark.xfail(bool(_too_long()), strict=False,
-                   reason="modules still being split: " + ", ".join(_too_long()))
 def test_no_module_over_600_lines():
     long = _too_long()
     assert not long, f"modules over {MAX_LINES} lines: " + ", ".join(long)
