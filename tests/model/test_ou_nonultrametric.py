@@ -175,3 +175,25 @@ def test_clade_loo_equals_dense_conditioning():
         ref = scipy.stats.multivariate_normal(mean[a] + gain @ (y[b] - mean[b]),
                                               full[np.ix_(a, a)] - gain @ full[np.ix_(b, a)]).logpdf(y[a])
         assert res.pointwise.loc[clade, "elpd_i"] == pytest.approx(ref, rel=1e-8)
+
+
+def test_exact_refit_likelihood_with_a_species_held_out():
+    """The refit model's likelihood with species i masked out equals scipy's density of
+    the remaining cells under the dense Hansen covariance (the log D terms of the
+    held-out cells must leave with them)."""
+    from cladewise.evaluation.refits import _HOLDOUT, _holdout_model
+
+    tree, vals, se, built, point = _setup(2, "stationary", False)
+    hb = _holdout_model(built)
+    m = hb.model
+    fn = pytensor.function(m.free_RVs, m["tree_loglik"] + m["holdout_correction"], on_unused_input="ignore")
+    full, mean = _reference_cov(tree, built, point, se, "stationary")
+    y = vals.to_numpy().ravel()
+    for i in (0, 5):
+        mask = hb.observed.copy()
+        mask[i] = False
+        m[_HOLDOUT].set_value(mask.astype("float64"))
+        got = float(fn(*[point[rv.name] for rv in m.free_RVs]))
+        keep = mask.ravel()
+        ref = scipy.stats.multivariate_normal(mean[keep], full[np.ix_(keep, keep)]).logpdf(y[keep])
+        assert got == pytest.approx(ref, rel=1e-8)
