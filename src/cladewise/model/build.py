@@ -322,7 +322,7 @@ def _likelihood(tree: FlatTree, parent, lengths, y, observed, R, E, err_var, mu,
 
 # --------------------------------------------------------------------------- build
 def build_model(
-    data: ModelData, spec: ModelSpec, likelihood: str = "tree"
+    data: ModelData, spec: ModelSpec, likelihood: str = "tree", ultrametric: bool | None = None
 ) -> BuiltModel:
     """Turn data and a specification into a PyMC model.
 
@@ -335,6 +335,10 @@ def build_model(
     likelihood : {"tree", "dense"}
         ``"tree"``: the linear-time engine (default). ``"dense"``: a dense
         multivariate normal, for checks on small trees and benchmarks.
+    ultrametric : bool, optional
+        Whether every tree the model will serve is ultrametric (default: whether
+        ``data.tree`` is). Under OU a non-ultrametric tree adds an exact per-tip
+        rescaling; a tree sample passes False when any of its trees needs it.
 
     Returns
     -------
@@ -350,10 +354,11 @@ def build_model(
     # OU on a non-ultrametric tree: exact through a per-tip rescaling (model/evolution.py),
     # except a species-level covariance between traits, which would need E / D_i^2 per species
     n_traits = 1 if spec.kind == "regression" else len(spec.traits)
-    exact_ou = (spec.evolution == "ou" and not tree.is_ultrametric()
-                and not (spec.species_covariance and n_traits > 1))
+    if ultrametric is None:
+        ultrametric = tree.is_ultrametric()
+    exact_ou = spec.evolution == "ou" and not ultrametric and not (spec.species_covariance and n_traits > 1)
     notes = list(data.notes) + model_warnings(
-        tree, spec.evolution, exact_ou=exact_ou,
+        tree, spec.evolution, exact_ou=exact_ou, ultrametric=ultrametric,
         reason="a species-level covariance between several traits is not yet exact under OU "
                "on such a tree" if spec.species_covariance else "")
     pri = dict(spec.priors)

@@ -144,18 +144,21 @@ def check_model_name(name: str) -> str:
 
 
 def model_warnings(tree: FlatTree, model: str, rtol: float = 1e-6, exact_ou: bool = False,
-                   reason: str = "") -> list[str]:
+                   reason: str = "", ultrametric: bool | None = None) -> list[str]:
     """Plain-language warnings about using ``model`` on ``tree``.
 
     ``exact_ou``: the caller uses the exact per-tip scale of :func:`ou_tip_scale` (the
     fitted model does, except with a species-level covariance between several traits),
     so a non-ultrametric tree needs no warning. ``reason`` says why it could not.
+    ``ultrametric`` overrides the check of ``tree`` (a tree sample judges all its trees).
     """
     model = check_model_name(model)
     out = []
-    if model in _EXACT_ONLY_ULTRAMETRIC and not exact_ou and not tree.is_ultrametric(rtol):
+    if ultrametric is None:
+        ultrametric = tree.is_ultrametric(rtol)
+    if model in _EXACT_ONLY_ULTRAMETRIC and not exact_ou and not ultrametric:
         out.append(
-            f"the {model!r} model is used here as an approximation: this tree's root-to-tip "
+            f"the {model!r} model is used here as an approximation: the tree's root-to-tip "
             "distances differ, so time is measured from the tallest tip"
             + (f" ({reason})" if reason else "")
             + ". Consider an ultrametric (time-calibrated) tree."
