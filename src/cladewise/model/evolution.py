@@ -20,8 +20,9 @@ name            parameter     effect on the tree
                               values slow evolution through time (Harmon et al.
                               2010, Evolution 64:2385-2396). Exact on any tree.
 ``ou``          ``alpha``     Ornstein-Uhlenbeck pull towards one optimum (Hansen
-                              1997, Evolution 51:1341-1351). Exact on ultrametric
-                              trees only; see :func:`transformed_lengths`.
+                              1997, Evolution 51:1341-1351). The lengths are exact
+                              on ultrametric trees; other trees add a per-tip
+                              scale (:func:`ou_rescaled_inputs`).
 ==============  ============  ====================================================
 
 Root edge. A branch above the root (the last entry of the lengths, often 0) is a
