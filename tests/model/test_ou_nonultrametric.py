@@ -199,14 +199,15 @@ def test_exact_refit_likelihood_with_a_species_held_out():
         assert got == pytest.approx(ref, rel=1e-8)
 
 
-def test_regression_loglik_equals_dense_hansen():
+def test_regression_loglik_and_replicates_follow_dense_hansen():
     """Regression under OU: the response given the predictors is normal with mean
-    X beta and covariance rate x Hansen V + se^2 (scipy logpdf)."""
+    X beta and covariance rate x Hansen V + se^2 (scipy logpdf); replicates of the
+    posterior predictive at that point, whitened by it, have mean 0 and identity
+    covariance within sampling error (3000 replicates, bound 0.1 as above)."""
     rng = np.random.default_rng(11)
-    n = 9
+    n = 7
     tree = random_tree(n, rng, False)
     vals = pd.DataFrame({"a": rng.normal(size=n), "b": rng.normal(3.0, 1.0, size=n)}, index=list(tree.tip_names))
-    vals.iloc[4, 0] = np.nan
     se = pd.DataFrame({"a": rng.uniform(0.1, 0.4, n), "b": np.nan}, index=vals.index)
     spec = ModelSpec(kind="regression", formula="a ~ b", evolution="ou", ou_root="fixed", measurement_error="se")
     built = build_model(ModelData(tree, vals, se=se), spec)
@@ -221,6 +222,13 @@ def test_regression_loglik_equals_dense_hansen():
     cov = rate * _hansen(tree, ALPHA, "fixed") + np.diag(se["a"].to_numpy() ** 2)
     ref = scipy.stats.multivariate_normal((built.design @ coef)[obs], cov[np.ix_(obs, obs)]).logpdf(vals["a"].to_numpy()[obs])
     assert got == pytest.approx(ref, rel=1e-8)
+    S = 3000
+    idata = az.from_dict(posterior={name: np.broadcast_to(np.asarray(v), (1, S) + np.shape(v)).copy()
+                                    for name, v in point.items()})
+    reps = posterior_predictive(built, idata, n_draws=S, seed=2).values[0][:, :, 0]
+    w = np.linalg.solve(np.linalg.cholesky(cov), (reps - built.design @ coef).T)
+    np.testing.assert_allclose(np.cov(w), np.eye(n), atol=0.1)
+    np.testing.assert_allclose(w.mean(axis=1), 0.0, atol=0.1)
 
 
 def test_tree_sample_with_an_ultrametric_reference_still_rescales():
