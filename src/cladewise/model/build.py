@@ -360,7 +360,8 @@ def build_model(
     notes = list(data.notes) + model_warnings(
         tree, spec.evolution, exact_ou=exact_ou, ultrametric=ultrametric,
         reason="a species-level covariance between several traits is not yet exact under OU "
-               "on such a tree" if spec.species_covariance else "")
+               "on such a tree; species_covariance = false makes the OU likelihood exact"
+               if spec.species_covariance else "")
     pri = dict(spec.priors)
     priors: list[PriorInfo] = []
     weights = _mean_tip_weights(tree)
