@@ -15,7 +15,6 @@ import ast
 from dataclasses import dataclass
 from pathlib import Path
 
-import pytest
 
 SRC = Path(__file__).resolve().parents[1] / "src"
 PACKAGE = "cladewise"

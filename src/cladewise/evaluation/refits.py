@@ -58,6 +58,7 @@ def _holdout_model(built: Any) -> Any:
     with m:
         mask = pm.Data(_HOLDOUT, hb.observed.astype("float64"))
         kept = tree_loglik(m["tree_parent"], ei["lengths"], ei["y"], mask, ei["R"], ei["E"], ei["err_var"], ei["mu"])
+        kept = kept - (mask * ei["log_scale"][:, None]).sum()  # OU rescaling (BuiltModel.engine_inputs)
         pm.Potential("holdout_correction", kept - m["tree_loglik"])
     return hb
 
@@ -278,7 +279,9 @@ def loo_clades(
         args = (d["lengths"][s], d["R"][s], d["E"][s], ev[s] if ev.ndim >= 3 else ev, d["mu"][s])
         full = loglik(parent, args[0], y, obs, args[1], args[2], args[3], args[4])
         for g, m in enumerate(masks):
-            out[s, g] = full - loglik(parent, args[0], y, m, args[1], args[2], args[3], args[4])
+            # less log D per held-out observed cell: OU rescaling (BuiltModel.engine_inputs)
+            jac = float(((obs & ~m).sum(axis=1) * d["log_scale"][s]).sum())
+            out[s, g] = full - loglik(parent, args[0], y, m, args[1], args[2], args[3], args[4]) - jac
     names = list(groups)
     ll = xr.DataArray(out.reshape(nc, nd, -1), dims=("chain", "draw", "clade"),
                       coords={"chain": np.arange(nc), "draw": np.arange(nd), "clade": names})

@@ -30,7 +30,7 @@ class EngineDraws:
         self.names = [rv.name for rv in built.model.free_RVs]
 
     def draws(self, idata: az.InferenceData) -> tuple[dict[str, np.ndarray], tuple[int, int]]:
-        """Engine inputs (lengths, y, R, E, err_var, mu) stacked over draws, and (chains, draws)."""
+        """Engine inputs (lengths, y, R, E, err_var, mu, log_scale) stacked over draws, and (chains, draws)."""
         post = idata.posterior
         missing = [n for n in self.names if n not in post]
         if missing:
@@ -43,7 +43,7 @@ class EngineDraws:
 
 def engine_draws(built: Any, idata: az.InferenceData, engine: EngineDraws | None = None
                  ) -> tuple[dict[str, np.ndarray], tuple[int, int]]:
-    """Per-draw engine inputs (lengths, y, R, E, err_var, mu) stacked over draws."""
+    """Per-draw engine inputs (lengths, y, R, E, err_var, mu, log_scale) stacked over draws."""
     return (engine or EngineDraws(built)).draws(idata)
 
 
@@ -53,7 +53,9 @@ def pointwise_loglik(built: Any, idata: az.InferenceData, engine: EngineDraws | 
     ``log p(y_i | y_-i, theta)`` with measurement error included: for joint models
     all of the species' observed traits, for a regression the response given the
     predictors (Bürkner, Gabry & Vehtari 2021). Linear in the number of species.
-    ``built.data.tree`` gives the tree topology; ``engine`` a compiled
+    Under OU on a non-ultrametric tree the conditional is that of the rescaled values
+    less ``log D_i`` per observed cell (exact; see ``ou_rescaled_inputs`` in
+    :mod:`cladewise.model.evolution`). ``built.data.tree`` gives the tree topology; ``engine`` a compiled
     :class:`EngineDraws` to reuse.
     """
     from cladewise.engine import loo_logdensity_draws
@@ -72,6 +74,9 @@ def pointwise_loglik(built: Any, idata: az.InferenceData, engine: EngineDraws | 
         ])
     else:
         ll = loo_logdensity_draws(parent, d["lengths"], y, built.observed, d["R"], d["E"], d["err_var"], d["mu"])
+    # OU on a non-ultrametric tree: the engine saw y' = mu + (y - mu) / D, and
+    # log p(y_i | y_-i) = log p'(y'_i | y'_-i) - (observed cells of i) log D_i
+    ll = ll - built.observed.sum(axis=1)[None, :] * d["log_scale"]
     return xr.DataArray(
         ll.reshape(nc, nd, -1), dims=("chain", "draw", "species"),
         coords={"chain": np.arange(nc), "draw": np.arange(nd), "species": list(built.species)},

@@ -192,12 +192,17 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
     is_regression = built.spec.kind == "regression"
     for a, s in enumerate(pick):
         t = tree.with_lengths(d["lengths"][s])
-        x = simulate_traits(t, d["R"][s], d["mu"][s], E=d["E"][s], rng=rng)
+        mu = d["mu"][s]
+        x = simulate_traits(t, d["R"][s], mu, E=d["E"][s], rng=rng)
         x = x + draw_errors(d["err_var"][s], rng)
+        # OU on a non-ultrametric tree: the engine inputs describe y' = mu + (y - mu) / D
+        # (D = 1 otherwise), so a replicate of y' maps back to y = mu + D (y' - mu)
+        D = np.exp(d["log_scale"][s])[:, None]
+        x = mu + D * (x - mu)
         if is_regression:
             # residual + fitted value: y = X beta + e
-            fitted = np.where(built.observed, built.y, 0.0) - d["y"][s]
-            x = x + fitted
+            resid = np.where(built.observed, mu + D * (d["y"][s] - mu), 0.0)
+            x = x + np.where(built.observed, built.y, 0.0) - resid
         out[a] = x
     return xr.DataArray(
         out[None], dims=("chain", "draw", "species", "trait"),

@@ -105,5 +105,7 @@ def build_for_sample(
     n_max = max([data.tree.n_nodes] + [t.n_nodes for t in aligned])
     padded = [pad_tree(t, n_max) for t in aligned]
     ref = dataclasses.replace(data, tree=pad_tree(data.tree, n_max), notes=list(data.notes))
-    built = build_model(ref, spec, likelihood=likelihood)
+    # OU needs its exact per-tip rescaling in the graph if any tree of the sample is not ultrametric
+    ultra = data.tree.is_ultrametric() and all(t.is_ultrametric() for t in aligned)
+    built = build_model(ref, spec, likelihood=likelihood, ultrametric=ultra)
     return built, padded

@@ -61,6 +61,8 @@ from cladewise.model.evolution import (
     check_model_name,
     lengths_from_arrays,
     model_warnings,
+    ou_rescaled_inputs,
+    ou_tip_scale,
     tree_arrays,
 )
 from cladewise.data.trees import FlatTree
@@ -234,7 +236,10 @@ class BuiltModel:
     observed: np.ndarray  # (N, k) bool
     priors: list[PriorInfo]
     summary_vars: list[str]
-    engine_inputs: dict[str, Any]  # tensors: lengths, y, R, E, err_var, mu
+    # tensors: lengths, y, R, E, err_var, mu, log_scale. Under OU on a non-ultrametric tree
+    # y, E and err_var are those of y' = mu + (y - mu) / D and log_scale = log D (else 0):
+    # a log-likelihood over some cells subtracts log_scale once per observed cell
+    engine_inputs: dict[str, Any]
     tree_data: dict[str, str]  # tree array name -> pm.Data name
     likelihood: str
     notes: list[str] = field(default_factory=list)
@@ -256,7 +261,7 @@ class BuiltModel:
         Used to evaluate per-draw quantities (pointwise log-likelihood, predictive
         draws) after sampling without storing large arrays in the posterior.
         """
-        names = ["lengths", "y", "R", "E", "err_var", "mu"]
+        names = ["lengths", "y", "R", "E", "err_var", "mu", "log_scale"]
         outs = [pt.as_tensor_variable(self.engine_inputs[k]) for k in names]
         fn = pytensor.function(self.model.free_RVs, outs, on_unused_input="ignore")
         rv_names = [rv.name for rv in self.model.free_RVs]
@@ -329,7 +334,7 @@ def _likelihood(tree: FlatTree, parent, lengths, y, observed, R, E, err_var, mu,
 
 # --------------------------------------------------------------------------- build
 def build_model(
-    data: ModelData, spec: ModelSpec, likelihood: str = "tree"
+    data: ModelData, spec: ModelSpec, likelihood: str = "tree", ultrametric: bool | None = None
 ) -> BuiltModel:
     """Turn data and a specification into a PyMC model.
 
@@ -342,6 +347,10 @@ def build_model(
     likelihood : {"tree", "dense"}
         ``"tree"``: the linear-time engine (default). ``"dense"``: a dense
         multivariate normal, for checks on small trees and benchmarks.
+    ultrametric : bool, optional
+        Whether every tree the model will serve is ultrametric (default: whether
+        ``data.tree`` is). Under OU a non-ultrametric tree adds an exact per-tip
+        rescaling; a tree sample passes False when any of its trees needs it.
 
     Returns
     -------
@@ -354,7 +363,12 @@ def build_model(
             f"only {tree.n_tips} species matched between tree and table; a comparative "
             "analysis needs at least 3 (and many more for useful intervals)"
         )
-    notes = list(data.notes) + model_warnings(tree, spec.evolution)
+    # OU on a non-ultrametric tree: exact through a per-tip rescaling (model/evolution.py);
+    # a species-level covariance joins each species' error as E / D_i^2
+    if ultrametric is None:
+        ultrametric = tree.is_ultrametric()
+    exact_ou = spec.evolution == "ou" and not ultrametric
+    notes = list(data.notes) + model_warnings(tree, spec.evolution, exact_ou=exact_ou, ultrametric=ultrametric)
     pri = dict(spec.priors)
     priors: list[PriorInfo] = []
     weights = _mean_tip_weights(tree)
@@ -417,10 +431,17 @@ def build_model(
         # --- measurement error
         err_var = _measurement_error(spec, data, err_cols, observed, priors, notes)
 
+        # --- exact OU on a non-ultrametric tree: engine inputs of y' = mu + (y - mu) / D
+        ey, e_err, e_E, log_scale = y_t, err_var, E, pt.zeros(n)
+        if exact_ou:
+            scale = ou_tip_scale(tensors, evo["alpha"])
+            ey, e_err, e_E, log_scale = ou_rescaled_inputs(scale, y_t, observed, mu, err_var, E)
+        jacobian = -pt.dot(observed.sum(axis=1).astype(float), log_scale)
+
         obs_t = observed if likelihood == "dense" else pm.Data("obs_mask", observed.astype(np.int8))
         pm.Potential(
             "tree_loglik",
-            _likelihood(tree, parent, lengths, y_t, obs_t, R, E, err_var, mu, likelihood),
+            _likelihood(tree, parent, lengths, ey, obs_t, R, e_E, e_err, mu, likelihood) + jacobian,
         )
 
     summary_vars = summary_names(model.named_vars)  # catalogue order (model/quantities.py)
@@ -428,7 +449,8 @@ def build_model(
         model=model, spec=spec, data=data, traits=traits,
         y=np.where(observed, y, np.nan), observed=observed, priors=priors,
         summary_vars=summary_vars,
-        engine_inputs={"lengths": lengths, "y": y_t, "R": R, "E": E, "err_var": err_var, "mu": mu},
+        engine_inputs={"lengths": lengths, "y": ey, "R": R, "E": e_E, "err_var": e_err, "mu": mu,
+                       "log_scale": log_scale},
         tree_data=tree_data, likelihood=likelihood, notes=notes,
         predictors=predictors, design=X,
     )

@@ -20,8 +20,9 @@ name            parameter     effect on the tree
                               values slow evolution through time (Harmon et al.
                               2010, Evolution 64:2385-2396). Exact on any tree.
 ``ou``          ``alpha``     Ornstein-Uhlenbeck pull towards one optimum (Hansen
-                              1997, Evolution 51:1341-1351). Exact on ultrametric
-                              trees only; see :func:`transformed_lengths`.
+                              1997, Evolution 51:1341-1351). The lengths are exact
+                              on ultrametric trees; other trees add a per-tip
+                              scale (:func:`ou_rescaled_inputs`).
 ==============  ============  ====================================================
 
 Root edge. A branch above the root (the last entry of the lengths, often 0) is a
@@ -38,11 +39,14 @@ value is drawn from the stationary distribution, which adds a root edge of lengt
 ``exp(-2 alpha T) / (2 alpha)``; the covariance becomes
 ``R/(2 alpha) exp(-2 alpha (T - s_ij))`` (Hansen 1997; Butler & King 2004,
 Am. Nat. 164:683-695). On a non-ultrametric tree the OU covariance is not a
-Brownian motion on any tree; cladewise then measures time from the tallest tip,
-which is an approximation, and :func:`model_warnings` says so. The exact covariance
-(Hansen 1997) is ``D C D`` with C the covariance of these lengths and ``D`` the
-per-tip scale of :func:`ou_tip_scale` (Ho & Ane 2014, Syst. Biol. 63:397-408); the
-likelihood does not use it yet, because the engine has no per-tip scale.
+Brownian motion on any tree; the lengths alone measure time from the tallest tip.
+The exact covariance (Hansen 1997) is ``D C D`` with C the covariance of these
+lengths and ``D`` the per-tip scale of :func:`ou_tip_scale` (Ho & Ane 2014, Syst.
+Biol. 63:397-408). Every tip has the mean ``mu`` under both root treatments, so
+``y_i = mu + D_i z_i + e_i`` with ``z`` Brownian on C, and the model evaluates the
+likelihood exactly on rescaled data (:func:`ou_rescaled_inputs`), still in linear
+time. Only a species-level covariance between several traits (which would become
+``E / D_i^2`` per species) keeps the approximation, and :func:`model_warnings` says so.
 """
 
 from __future__ import annotations
@@ -67,6 +71,7 @@ __all__ = [
     "model_warnings",
     "check_model_name",
     "ou_tip_scale",
+    "ou_rescaled_inputs",
 ]
 
 #: model name -> names of its parameters
@@ -139,15 +144,25 @@ def check_model_name(name: str) -> str:
     return key
 
 
-def model_warnings(tree: FlatTree, model: str, rtol: float = 1e-6) -> list[str]:
-    """Plain-language warnings about using ``model`` on ``tree``."""
+def model_warnings(tree: FlatTree, model: str, rtol: float = 1e-6, exact_ou: bool = False,
+                   reason: str = "", ultrametric: bool | None = None) -> list[str]:
+    """Plain-language warnings about using ``model`` on ``tree``.
+
+    ``exact_ou``: the caller uses the exact per-tip scale of :func:`ou_tip_scale` (the
+    fitted model does),
+    so a non-ultrametric tree needs no warning. ``reason`` says why it could not.
+    ``ultrametric`` overrides the check of ``tree`` (a tree sample judges all its trees).
+    """
     model = check_model_name(model)
     out = []
-    if model in _EXACT_ONLY_ULTRAMETRIC and not tree.is_ultrametric(rtol):
+    if ultrametric is None:
+        ultrametric = tree.is_ultrametric(rtol)
+    if model in _EXACT_ONLY_ULTRAMETRIC and not exact_ou and not ultrametric:
         out.append(
-            f"the {model!r} model is exact only on ultrametric trees; this tree's "
-            "root-to-tip distances differ, so time is measured from the tallest tip "
-            "(an approximation). Consider an ultrametric (time-calibrated) tree."
+            f"the {model!r} model is used here as an approximation: the tree's root-to-tip "
+            "distances differ, so time is measured from the tallest tip"
+            + (f" ({reason})" if reason else "")
+            + ". Consider an ultrametric (time-calibrated) tree."
         )
     return out
 
@@ -318,3 +333,54 @@ def ou_tip_scale(arrays: dict[str, Any], alpha: Any) -> Any:
     xp = _backend(alpha, *arrays.values())
     gap = xp.maximum(arrays["height"] - arrays["h_end"], 0.0)
     return xp.exp(alpha * gap)
+
+
+def ou_rescaled_inputs(scale: Any, y: Any, observed: Any, mu: Any, err_var: Any, E: Any
+                       ) -> tuple[Any, Any, Any, Any]:
+    """Engine inputs that make the OU likelihood exact on a non-ultrametric tree.
+
+    Under OU every tip has the mean ``mu`` (root at the optimum, or drawn from the
+    stationary distribution around it), so ``y_i = mu + D_i z_i + e_i`` with ``z``
+    Brownian on the OU lengths and D from :func:`ou_tip_scale`. Dividing by ``D_i``:
+    ``y'_i = mu + (y_i - mu) / D_i`` follows the engine's model with error variances
+    ``err_var_i / D_i^2``, and ``log p(y) = log p'(y') - sum over observed cells of
+    log D_i`` (change of variables).
+
+    Parameters
+    ----------
+    scale : TensorVariable or ndarray, shape (n_nodes,)
+        From :func:`ou_tip_scale` (tips first).
+    y, observed : (n, k)
+        Values (0 where unobserved) and the observed mask.
+    mu : (k,)
+        Mean of every tip.
+    err_var : (n, k) or (n, k, k)
+        Measurement-error variances (or per-species covariances).
+    E : (k, k)
+        Species-level covariance: ``E / D_i^2`` joins each species' error (variance for
+        k = 1, a k x k covariance for k > 1), and the returned E' is zero.
+
+    Returns
+    -------
+    y', err_var', E', log_scale
+        ``log_scale`` (n,) is ``log D_i``; a log-likelihood over a set of cells subtracts
+        ``log_scale`` once per observed cell of the set.
+    """
+    xp = _backend(scale, y, mu, err_var, E)
+    n, k = observed.shape
+    D = scale[:n]
+    log_scale = xp.log(D)
+    y_new = xp.where(observed, mu[None, :] + (y - mu[None, :]) / D[:, None], 0.0)
+    # A species-level covariance is error around the species' own values: it scales
+    # with D too, so it joins each species' error (the engine ignores rows and columns
+    # of unobserved cells).
+    if k == 1:
+        err_var = err_var + xp.where(observed, E[0, 0], 0.0).reshape(err_var.shape)
+    else:
+        if err_var.ndim == 2:
+            err_var = err_var[:, :, None] * xp.eye(k)[None, :, :]
+        err_var = err_var + E[None, :, :]
+    E = E * 0.0
+    inv2 = 1.0 / D**2
+    shape = (n,) + (1,) * (err_var.ndim - 1)
+    return y_new, err_var * inv2.reshape(shape), E, log_scale
