@@ -7,36 +7,10 @@ HDI of the evolutionary correlation excludes zero, beside how often a Pearson te
 that ignores the tree gives p < 0.05 on the same data. At a true correlation of 0 the
 share is the false-positive rate. See :func:`cladewise.studies.power.run_power_study`.
 
-SPEC is a TOML file. Only ``tree`` is read from ``[data]`` (other keys are ignored,
-so a fit spec with a ``[power]`` table added works too)::
+SPEC is a TOML file with ``[data] tree`` and a ``[power]`` table; the format is documented
+in :mod:`cladewise.config.power`.
 
-    # Invented example.
-    [data]
-    tree = "tree.nwk"                  # relative to this file; the first tree is used
-
-    [power]
-    traits = ["head_width", "prey_size"]   # two labels; default ["trait_1", "trait_2"]
-    correlations = [0.0, 0.2, 0.4, 0.6]    # true evolutionary correlations (default)
-    n_datasets = 100                   # simulated data sets per correlation (default 100)
-    rates = [0.04, 0.09]               # Brownian rate per trait: variance per unit
-                                       # branch length (required; one number for both)
-    root_means = [0.0, 0.0]            # values at the root (default 0)
-    # Measurement error of the species means (optional; none by default), either
-    standard_errors = [0.05, 0.1]      # known se: one number or one per trait
-    # or a within-species variance with the number of specimens per species:
-    # within_variance = [0.02, 0.05]
-    # specimens_per_species = 5        # a number, [low, high] (drawn once per
-    #                                  # species) or a table { species_a = 3, ... }
-    hdi_prob = 0.95                    # HDI that must exclude 0 (default 0.95)
-    alpha = 0.05                       # level of the Pearson test (default 0.05)
-    seed = 1
-
-    [sampling]                         # optional, as in a fit spec; default for a
-    chains = 2                         # study: 2 chains, 500 draws, 500 tuning steps
-    draws = 500
-    tune = 500
-
-Output folder (an existing non-empty folder is refused unless ``--overwrite``):
+Output folder (a folder cladewise did not write is refused; ``--overwrite`` replaces one it did):
 ``power_table.csv`` (one row per correlation: shares and Monte Carlo standard
 errors), ``power_fits.csv`` (one row per data set), ``power.json`` (settings, priors,
 the spec text and the table), ``power.png`` and ``power.svg`` (the figure).

@@ -28,7 +28,7 @@ from cladewise.inference.draws import LOGLIK_VAR, EngineDraws, engine_draws, poi
 from cladewise.inference.results import atomic_write, check_output_folder, load_fit
 from cladewise.inference.sampling import SamplingOptions, sample
 from cladewise.model.describe import describe_model
-from cladewise.model.quantities import quantity_elements, signed_names
+from cladewise.model.quantities import iter_elements, signed_names
 
 __all__ = [
     "FitResult",
@@ -230,15 +230,7 @@ def iter_quantities(idata: az.InferenceData, var_names: list[str]):
 
     Correlation matrices give their upper triangle, slope matrices their off-diagonal.
     """
-    post = idata.posterior
-    for name in var_names:
-        if name not in post:
-            continue
-        da = post[name]
-        extra = [d for d in da.dims if d not in ("chain", "draw")]
-        for sel, label in quantity_elements(da, extra, name):
-            x = da.isel(sel) if sel else da
-            yield name, label, np.asarray(x.transpose("chain", "draw").values, dtype=float)
+    yield from iter_elements(idata.posterior, var_names)
 
 
 def _summarise(idata: az.InferenceData, built: BuiltModel | None, var_names: list[str] | None) -> pd.DataFrame:

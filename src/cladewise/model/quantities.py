@@ -23,6 +23,7 @@ from dataclasses import dataclass
 from typing import Any, Iterable, Iterator, Sequence
 
 __all__ = [
+    "iter_elements",
     "Quantity",
     "QUANTITIES",
     "LABEL_STYLES",
@@ -182,3 +183,22 @@ def plain_words(label: str, name: str) -> str:
         a, b = inner.split(", ", 1)
         return f"{base}, {a} & {b}"
     return f"{base}, {inner}"
+
+
+def iter_elements(posterior: Any, names: Iterable[str]) -> Iterator[tuple[str, str, Any]]:
+    """(variable, label, draws as a chain x draw array) of every reported element.
+
+    ``posterior`` is an xarray Dataset with ``chain`` and ``draw`` dimensions; names
+    it lacks are skipped. Correlation matrices give their upper triangle, slope
+    matrices their off-diagonal (see :func:`quantity_elements`).
+    """
+    import numpy as np
+
+    for name in names:
+        if name not in posterior:
+            continue
+        da = posterior[name]
+        extra = [d for d in da.dims if d not in ("chain", "draw")]
+        for sel, label in quantity_elements(da, extra, name):
+            x = da.isel(sel) if sel else da
+            yield name, label, np.asarray(x.transpose("chain", "draw").values, dtype=float)

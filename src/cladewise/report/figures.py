@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-from cladewise.model.quantities import QUANTITIES, plain_words, quantity_elements
+from cladewise.model.quantities import QUANTITIES, iter_elements, plain_words
 from cladewise.report.data import FitView
 from cladewise.report.style import LINESTYLES, MARKERS, OKABE_ITO, SERIES, new_figure
 from cladewise.report.tree_plot import COMPACT_ABOVE, plot_tree
@@ -56,17 +56,7 @@ def _hdi(x: np.ndarray) -> tuple[float, float]:
 
 def _elements(view: FitView, names) -> list[tuple[str, str, np.ndarray]]:
     """(variable, catalogue label, draws as chain x draw) of every element of ``names``."""
-    post = view.posterior
-    out = []
-    for name in names:
-        if name not in post:
-            continue
-        da = post[name]
-        extra = [d for d in da.dims if d not in ("chain", "draw")]
-        for sel, label in quantity_elements(da, extra, name):
-            x = da.isel(sel) if sel else da
-            out.append((name, label, np.asarray(x.transpose("chain", "draw").values, dtype=float)))
-    return out
+    return list(iter_elements(view.posterior, names))
 
 
 def _is_intercept(label: str) -> bool:
