@@ -375,11 +375,7 @@ class _SharedArrays:
     def __call__(self, outputs: Any) -> Any:
         import pytensor
         from pytensor.graph.basic import Constant
-
-        try:  # moved in PyTensor 2.31; the old place warns
-            from pytensor.graph.traversal import ancestors
-        except ImportError:  # pragma: no cover - older PyTensor
-            from pytensor.graph.basic import ancestors
+        from pytensor.graph.traversal import ancestors
 
         single = not isinstance(outputs, (list, tuple))
         outs = [outputs] if single else list(outputs)
