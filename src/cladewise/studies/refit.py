@@ -85,6 +85,7 @@ class RefitStudy:
         from cladewise.inference.sampling import sample
 
         if not isinstance(y, np.ndarray):
+            # compiled per data set: the compile cache makes the same structure a quick load
             fresh = compile_study(y, self.built.spec, self.options)
             return fresh.fit(fresh.built.y, seed)
         values = {"obs_values": np.where(np.isfinite(y), y, 0.0)}
@@ -115,8 +116,11 @@ def make_refit_study(
     return compile_study(ModelData(tree, values, se=se_df), spec, options)
 
 
-def compile_study(data: Any, spec: Any, options: Any) -> RefitStudy:
+def compile_study(data: Any, spec: Any, options: Any, compile: bool = True) -> RefitStudy:
     """Build ``spec`` on reference ``data`` (a ModelData) and compile it once.
+
+    ``compile=False`` builds only (for studies that rebuild the model per data set
+    and need the reference model just for its prior).
 
     With ``measurement_error = "se"`` the squared standard errors of the reference
     are kept and passed with every refit (they are data, like the values).
@@ -125,7 +129,7 @@ def compile_study(data: Any, spec: Any, options: Any) -> RefitStudy:
     from cladewise.model.build import build_model
 
     built = build_model(data, spec)
-    compiled = compile_model(built, options.sampler)
+    compiled = compile_model(built, options.sampler) if compile else None
     err_var = None
     if spec.measurement_error == "se":
         err_var = np.asarray(built.model["obs_err_var"].get_value(), dtype=float)
