@@ -8,7 +8,12 @@ posterior intervals cover at their nominal rate when the fit is right.
 
 The model is built once on a reference data set simulated on the tree (spread about
 1 per trait) and its prior, scaled to that reference, is the prior the truths are
-drawn from, as the method requires (see :mod:`cladewise.studies.refit`).
+drawn from, as the method requires (see :mod:`cladewise.studies.refit`). Truths
+include the engine's inputs (transformed branch lengths, rate matrix, root), so data
+are simulated by the model's own generative process. Settings: ``correlated``
+(known se), ``regression`` (``y ~ x``, x offset from zero and held fixed) and
+``specimens`` (correlated within-species error; rebuilt and compiled per data set, so
+its data-scaled prior scales follow each data set: close to, not exactly, SBC).
 """
 
 from __future__ import annotations

@@ -1,9 +1,10 @@
 """One compiled model refitted to many simulated data sets: shared by the studies.
 
 The power study (:mod:`cladewise.studies.power`) and the simulation-based calibration
-(:mod:`cladewise.studies.calibration`) both build the correlated Brownian-motion model
-once on a reference data set and refit it to every simulated data set without
-recompiling (the data are ``pm.Data``).
+(:mod:`cladewise.studies.calibration`) both build a model once on a reference data
+set and refit it to every simulated data set without recompiling (the data are
+``pm.Data``); data held as model constants (specimen statistics) are refitted by a
+rebuild, which the compile cache turns into a load.
 """
 
 from __future__ import annotations
