@@ -91,3 +91,37 @@ def test_sbc_guard_correlated_bm_with_known_se():
     assert len(fits) == 20
     np.testing.assert_allclose(fits["divergent_share"], fits["divergences"] / (2 * 250))
     assert int(fits["divergences"].sum()) == res.settings["divergences"]
+
+
+@pytest.mark.parametrize("model, evolution, labels", [
+    ("regression", "lambda", {"coef[Intercept]", "coef[x]", "intercept_at_mean", "evo_rate[y]", "lambda"}),
+    # the specimens model is compiled per data set (its specimen statistics are constants):
+    # a cold compile in the tests' own cache plus two loads, over a minute
+    pytest.param("specimens", "bm", {"evo_corr[trait_1, trait_2]", "within_corr[trait_1, trait_2]",
+                                     "evo_rate[trait_1]", "evo_rate[trait_2]"}, marks=pytest.mark.slow),
+])
+def test_calibration_settings_run_end_to_end(model, evolution, labels):
+    # 2 tiny data sets: only the shape of the tables is checked, no coverage
+    tree = random_tree(8, np.random.default_rng(2), True)
+    res = run_calibration(tree, 2, model=model, evolution=evolution, n_rank_draws=19, n_bins=4, seed=4,
+                          options=SamplingOptions(chains=1, draws=40, tune=40, progress=False))
+    assert set(res.ranks["parameter"]) == labels
+    assert len(res.ranks) == 2 * len(labels)
+    assert res.ranks["rank"].between(0, 19).all()
+    # coverage: every checked parameter plus "all", at each of the three intervals
+    assert len(res.coverage) == 3 * (len(labels) + 1)
+    assert res.coverage["coverage"].between(0, 1).all()
+    # binomial se at the nominal rate, e.g. sqrt(0.9 * 0.1 / 2) for one parameter over 2 data sets
+    np.testing.assert_allclose(res.coverage["mcse"],
+                               np.sqrt(res.coverage.nominal * (1 - res.coverage.nominal) / res.coverage.n))
+    assert set(res.uniformity["parameter"]) == labels
+    assert res.settings["recompiled_per_dataset"] == (model == "specimens")
+    assert "within_2se" in res.coverage
+
+
+def test_calibration_rejects_unknown_setting():
+    tree = random_tree(6, np.random.default_rng(0), True)
+    with pytest.raises(InputError, match="model must be one of"):
+        run_calibration(tree, 4, model="ou")
+    with pytest.raises(InputError, match="specimens"):
+        run_calibration(tree, 4, model="specimens", measurement_error="se")

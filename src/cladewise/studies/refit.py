@@ -1,9 +1,10 @@
 """One compiled model refitted to many simulated data sets: shared by the studies.
 
 The power study (:mod:`cladewise.studies.power`) and the simulation-based calibration
-(:mod:`cladewise.studies.calibration`) both build the correlated Brownian-motion model
-once on a reference data set and refit it to every simulated data set without
-recompiling (the data are ``pm.Data``).
+(:mod:`cladewise.studies.calibration`) both build a model once on a reference data
+set and refit it to every simulated data set without recompiling (the data are
+``pm.Data``); data held as model constants (specimen statistics) are refitted by a
+rebuild, which the compile cache turns into a load.
 """
 
 from __future__ import annotations
@@ -23,6 +24,7 @@ __all__ = [
     "Progress",
     "RefitStudy",
     "make_refit_study",
+    "compile_study",
     "default_study_options",
     "check_study_tree",
     "simulate_datasets",
@@ -73,11 +75,21 @@ class RefitStudy:
     options: Any
     err_var: np.ndarray | None
 
-    def fit(self, y: np.ndarray, seed: int) -> Any:
-        """Sample the model on data ``y`` (species x traits) with ``seed``; returns InferenceData."""
+    def fit(self, y: Any, seed: int) -> Any:
+        """Sample the model on data ``y`` with ``seed``; returns InferenceData.
+
+        ``y`` is the species x traits array of the ``obs_values`` data (the compiled
+        model is reused), or a whole :class:`~cladewise.model.build.ModelData` for data
+        held as constants in the model (specimen statistics): the model is then built
+        again with the reference's spec and compiled, a cache hit for the same structure.
+        """
         from cladewise.inference.sampling import sample
 
-        values = {"obs_values": np.asarray(y, dtype=float)}
+        if not isinstance(y, np.ndarray):
+            # compiled per data set: the compile cache makes the same structure a quick load
+            fresh = compile_study(y, self.built.spec, self.options)
+            return fresh.fit(fresh.built.y, seed)
+        values = {"obs_values": np.where(np.isfinite(y), y, 0.0)}
         if self.err_var is not None:
             values["obs_err_var"] = self.err_var
         opts = dataclasses.replace(self.options, seed=int(seed))
@@ -95,17 +107,34 @@ def make_refit_study(
     tree: FlatTree, traits: list[str], y_ref: np.ndarray, se: np.ndarray | None, options: Any
 ) -> RefitStudy:
     """Build and compile the correlated BM model (known se when ``se`` is given) on ``y_ref``."""
-    from cladewise.inference.sampling import compile_model
-    from cladewise.model.build import ModelData, ModelSpec, build_model
+    from cladewise.model.build import ModelData, ModelSpec
 
     species = list(tree.tip_names)
     values = pd.DataFrame(y_ref, index=species, columns=traits)
     se_df = None if se is None else pd.DataFrame(se, index=species, columns=traits)
     spec = ModelSpec(kind="correlated", traits=traits, evolution="bm",
                      measurement_error="none" if se is None else "se")
-    built = build_model(ModelData(tree, values, se=se_df), spec)
-    compiled = compile_model(built, options.sampler)
-    return RefitStudy(built, compiled, options, None if se is None else se**2)
+    return compile_study(ModelData(tree, values, se=se_df), spec, options)
+
+
+def compile_study(data: Any, spec: Any, options: Any, compile: bool = True) -> RefitStudy:
+    """Build ``spec`` on reference ``data`` (a ModelData) and compile it once.
+
+    ``compile=False`` builds only (for studies that rebuild the model per data set
+    and need the reference model just for its prior).
+
+    With ``measurement_error = "se"`` the squared standard errors of the reference
+    are kept and passed with every refit (they are data, like the values).
+    """
+    from cladewise.inference.sampling import compile_model
+    from cladewise.model.build import build_model
+
+    built = build_model(data, spec)
+    compiled = compile_model(built, options.sampler) if compile else None
+    err_var = None
+    if spec.measurement_error == "se":
+        err_var = np.asarray(built.model["obs_err_var"].get_value(), dtype=float)
+    return RefitStudy(built, compiled, options, err_var)
 
 
 def simulate_datasets(tree: FlatTree, R: np.ndarray, mu: np.ndarray, se: np.ndarray | None,
@@ -122,7 +151,7 @@ def fit_problems(idata: Any) -> tuple[int, float]:
 
     div = int(np.asarray(idata.sample_stats["diverging"]).sum()) if "diverging" in idata.sample_stats else 0
     rhat = float("nan")
-    if idata.posterior.sizes["chain"] > 1:
+    if idata.posterior.sizes["chain"] > 1 and "evo_corr" in idata.posterior:
         da = idata.posterior["evo_corr"][:, :, 0, 1]
         rhat = float(az.rhat(da.to_dataset(name="r"))["r"])
     return div, rhat
