@@ -53,6 +53,7 @@ __all__ = [
     "MODEL",
     "MODEL_PRIORS",
     "MODEL_FIXED",
+    "MODEL_REGIMES",
     "SAMPLING",
     "SPEC_SECTIONS",
     "KINDS",
@@ -133,6 +134,39 @@ MODEL_FIXED = Table("model.fixed", {
 }, help="fixed evolution-model parameters")
 
 #: ``[model]``: the one declaration of every model key (fields of ModelSpec)
+#: one clade of ``[model.regimes.clades.<name>]`` (the table name is the regime by default)
+MODEL_REGIME_CLADE = Table("model.regimes.clades.<name>", {
+    "regime": Key("str", "regime of this clade (default: the table's name)", example='"island"'),
+    "species": Key("list[str]", "species whose most recent common ancestor is the clade", unique=True,
+                   example='["sp_a", "sp_b"]'),
+    "node": Key("str", "label of the clade's internal node in the tree file", example='"Insulares"'),
+    "starts": Key("str", "where the regime starts: the clade's stem branch or its crown (below its "
+                  "most recent common ancestor)", choices=("stem", "crown"), example='"stem"'),
+}, help="a clade in a regime")
+
+#: ``[model.regimes]``: evolutionary regimes painted on the tree (model/regimes.py)
+MODEL_REGIMES = Table("model.regimes", {
+    "name": Key("str", "name of this painting (shown when paintings are compared)", example='"islands"'),
+    "column": Key("str", "trait-table column with each species' regime; internal branches by "
+                  "parsimony", example='"habitat"'),
+    "order": Key("list[str]", "regime order (the first is the reference; parsimony ties go to the "
+                 "earlier regime)", unique=True, example='["mainland", "island"]'),
+    "background": Key("str", "regime of the branches outside the named clades (the reference)",
+                      example='"background"'),
+    "clades": Key("table", "named clades, one table each", table=Table(
+        "model.regimes.clades", any_key=Key("table", "a clade", table=MODEL_REGIME_CLADE)),
+        example='{ island = { species = ["sp_a", "sp_b"], starts = "stem" } }'),
+    "rates": Key("str", "own: a rate matrix per regime; scaled: one shared matrix times a ratio per "
+                 "regime; shared: one rate (OU optima only)", choices=("own", "scaled", "shared"),
+                 example='"own"'),
+    "optima": Key("bool", "one Ornstein-Uhlenbeck optimum per regime (evolution = \"ou\")",
+                  example="true"),
+    "rate_ratio_sd": Key("float", "sd of the normal prior on each log rate ratio (default 1.5)",
+                         min=0, min_open=True, example="1.5"),
+    "optimum_sd": Key("float", "sd of the normal prior on each optimum's difference from the "
+                      "reference, in trait sds (default 2)", min=0, min_open=True, example="2.0"),
+}, help="evolutionary regimes on the tree")
+
 MODEL = Table("model", {
     "kind": Key("str", "the model", choices=KINDS, example='"correlated"'),
     "traits": Key("list[str]", "trait columns of the model", unique=True, example='["trait_a", "trait_b"]'),
@@ -152,6 +186,8 @@ MODEL = Table("model", {
                   example="{ lkj_eta = 2.0 }"),
     "fixed": Key("table", "an evolution-model parameter held fixed", table=MODEL_FIXED,
                  example="{ lambda = 0.5 }"),
+    "regimes": Key("table", "evolutionary regimes painted on the tree", table=MODEL_REGIMES,
+                   example='{ column = "habitat", rates = "own" }'),
 }, help="what to fit")
 
 #: ``[sampling]``: fields of SamplingOptions

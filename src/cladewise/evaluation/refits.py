@@ -57,7 +57,8 @@ def _holdout_model(built: Any) -> Any:
     ei = hb.engine_inputs
     with m:
         mask = pm.Data(_HOLDOUT, hb.observed.astype("float64"))
-        kept = tree_loglik(m["tree_parent"], ei["lengths"], ei["y"], mask, ei["R"], ei["E"], ei["err_var"], ei["mu"])
+        kept = tree_loglik(m["tree_parent"], ei["lengths"], ei["y"], mask, ei["R"], ei["E"], ei["err_var"], ei["mu"],
+                           regime=m["tree_regime"] if hb.painting is not None else None)
         kept = kept - (mask * ei["log_scale"][:, None]).sum()  # OU rescaling (BuiltModel.engine_inputs)
         pm.Potential("holdout_correction", kept - m["tree_loglik"])
     return hb
@@ -268,6 +269,7 @@ def loo_clades(
     obs = built.observed
     per_draw_y = not np.allclose(d["y"], d["y"][:1])
     ev = d["err_var"]
+    regime = None if getattr(built, "painting", None) is None else built.painting.node_regime
     out = np.zeros((S, len(groups)))
     masks = []
     for tips in groups.values():
@@ -277,11 +279,12 @@ def loo_clades(
     for s in range(S):
         y = d["y"][s] if per_draw_y else d["y"][0]
         args = (d["lengths"][s], d["R"][s], d["E"][s], ev[s] if ev.ndim >= 3 else ev, d["mu"][s])
-        full = loglik(parent, args[0], y, obs, args[1], args[2], args[3], args[4])
+        full = loglik(parent, args[0], y, obs, args[1], args[2], args[3], args[4], regime=regime)
         for g, m in enumerate(masks):
             # less log D per held-out observed cell: OU rescaling (BuiltModel.engine_inputs)
             jac = float(((obs & ~m).sum(axis=1) * d["log_scale"][s]).sum())
-            out[s, g] = full - loglik(parent, args[0], y, m, args[1], args[2], args[3], args[4]) - jac
+            out[s, g] = full - loglik(parent, args[0], y, m, args[1], args[2], args[3], args[4],
+                                      regime=regime) - jac
     names = list(groups)
     ll = xr.DataArray(out.reshape(nc, nd, -1), dims=("chain", "draw", "clade"),
                       coords={"chain": np.arange(nc), "draw": np.arange(nd), "clade": names})

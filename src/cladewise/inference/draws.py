@@ -62,6 +62,9 @@ def pointwise_loglik(built: Any, idata: az.InferenceData, engine: EngineDraws | 
 
     d, (nc, nd) = engine_draws(built, idata, engine)
     parent = built.data.tree.parent
+    # regime models: R is (draws, regimes, k, k) and each branch has a regime
+    painting = getattr(built, "painting", None)
+    regime = None if painting is None else painting.node_regime
     y = d["y"]
     if y.ndim == 3 and np.allclose(y, y[:1]):
         y = y[0]
@@ -69,11 +72,13 @@ def pointwise_loglik(built: Any, idata: az.InferenceData, engine: EngineDraws | 
         # regression residuals y - X beta differ per draw: one call per draw
         ll = np.stack([
             loo_logdensity_draws(parent, d["lengths"][s:s + 1], y[s], built.observed, d["R"][s:s + 1],
-                                 d["E"][s:s + 1], d["err_var"][s:s + 1], d["mu"][s:s + 1])[0]
+                                 d["E"][s:s + 1], d["err_var"][s:s + 1], d["mu"][s:s + 1],
+                                 regime=regime)[0]
             for s in range(y.shape[0])
         ])
     else:
-        ll = loo_logdensity_draws(parent, d["lengths"], y, built.observed, d["R"], d["E"], d["err_var"], d["mu"])
+        ll = loo_logdensity_draws(parent, d["lengths"], y, built.observed, d["R"], d["E"], d["err_var"], d["mu"],
+                                  regime=regime)
     # OU on a non-ultrametric tree: the engine saw y' = mu + (y - mu) / D, and
     # log p(y_i | y_-i) = log p'(y'_i | y'_-i) - (observed cells of i) log D_i
     ll = ll - built.observed.sum(axis=1)[None, :] * d["log_scale"]

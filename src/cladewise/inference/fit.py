@@ -193,12 +193,16 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
     for a, s in enumerate(pick):
         t = tree.with_lengths(d["lengths"][s])
         mu = d["mu"][s]
-        x = simulate_traits(t, d["R"][s], mu, E=d["E"][s], rng=rng)
+        painting = getattr(built, "painting", None)
+        x = simulate_traits(t, d["R"][s], mu, E=d["E"][s], rng=rng,
+                            regime=None if painting is None else painting.node_regime)
         x = x + draw_errors(d["err_var"][s], rng)
         # OU on a non-ultrametric tree: the engine inputs describe y' = mu + (y - mu) / D
         # (D = 1 otherwise), so a replicate of y' maps back to y = mu + D (y' - mu)
         D = np.exp(d["log_scale"][s])[:, None]
         x = mu + D * (x - mu)
+        if "tip_mean" in d:  # multi-optimum OU: the engine saw y minus each tip's expected value
+            x = x + d["tip_mean"][s]
         if is_regression:
             # residual + fitted value: y = X beta + e
             resid = np.where(built.observed, mu + D * (d["y"][s] - mu), 0.0)

@@ -54,6 +54,7 @@ import pytensor.tensor as pt
 from cladewise.config.analysis import KINDS, MEASUREMENT_ERROR, MODEL
 from cladewise.config.tables import read_table
 from cladewise.errors import InputError
+from cladewise.model import regimes as rg
 from cladewise.model import within_species as ws
 from cladewise.model.design import regression_data
 from cladewise.model.evolution import (
@@ -122,6 +123,7 @@ class ModelData:
     sample_var: pd.DataFrame | None = None
     notes: list[str] = field(default_factory=list)
     specimens: pd.DataFrame | None = None
+    extra: pd.DataFrame | None = None  # text columns by species (e.g. a regime column)
 
     def __post_init__(self) -> None:
         if list(self.values.index) != list(self.tree.tip_names):
@@ -151,6 +153,7 @@ class ModelData:
             sample_var=frame(getattr(td, "within_var", None)),
             notes=list(getattr(match, "notes", []) or []),
             specimens=getattr(td, "specimens", None),
+            extra=None if getattr(td, "extra", None) is None else td.extra.set_axis(species),
         )
 
 
@@ -169,6 +172,7 @@ class ModelSpec:
     error_correlation: Any = None
     priors: dict[str, Any] = field(default_factory=dict)
     fixed: dict[str, float] = field(default_factory=dict)
+    regimes: dict[str, Any] = field(default_factory=dict)  # [model.regimes] (model/regimes.py)
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "ModelSpec":
@@ -214,6 +218,8 @@ class ModelSpec:
             if not isinstance(value, (int, float)):
                 raise InputError(f"[model.fixed] {key} must be a number")
         _check_error_correlation_spec(self)
+        if self.regimes:
+            rg.check_regime_spec(self)
         bad = sorted(set(self.priors) - set(PRIOR_KEYS))
         if bad:
             raise InputError(
@@ -245,6 +251,7 @@ class BuiltModel:
     notes: list[str] = field(default_factory=list)
     predictors: list[str] = field(default_factory=list)
     design: np.ndarray | None = None  # regression design matrix (N, p)
+    painting: Any = None  # data.regimes.Painting of a regime model; engine R is then (regimes, k, k)
 
     @property
     def species(self) -> list[str]:
@@ -262,6 +269,7 @@ class BuiltModel:
         draws) after sampling without storing large arrays in the posterior.
         """
         names = ["lengths", "y", "R", "E", "err_var", "mu", "log_scale"]
+        names += [n for n in ("tip_mean",) if n in self.engine_inputs]
         outs = [pt.as_tensor_variable(self.engine_inputs[k]) for k in names]
         fn = pytensor.function(self.model.free_RVs, outs, on_unused_input="ignore")
         rv_names = [rv.name for rv in self.model.free_RVs]
@@ -289,6 +297,9 @@ def tree_data_values(built: "BuiltModel", tree: FlatTree) -> dict[str, np.ndarra
     values = {built.tree_data[name]: arr for name, arr in tree_arrays(tree).items()}
     values[built.tree_data["parent"]] = tree.parent
     values[built.tree_data["tip_weights"]] = _mean_tip_weights(tree)
+    if built.painting is not None:
+        values[built.tree_data["regime"]] = rg.painting_from_spec(
+            built.spec.regimes, tree, built.data.extra, built.data.values).node_regime
     return values
 
 
@@ -313,18 +324,25 @@ def _path_matrix(tree: FlatTree) -> np.ndarray:
     return Z
 
 
-def _likelihood(tree: FlatTree, parent, lengths, y, observed, R, E, err_var, mu, likelihood: str):
+def _likelihood(tree: FlatTree, parent, lengths, y, observed, R, E, err_var, mu, likelihood: str,
+                regime=None, n_regimes: int = 1):
     if likelihood == "tree":
         from cladewise.engine import tree_loglik
 
-        return tree_loglik(pt.cast(parent, "int64"), lengths, y, observed, R, E, err_var, mu)
+        return tree_loglik(pt.cast(parent, "int64"), lengths, y, observed, R, E, err_var, mu,
+                           regime=regime)
     if likelihood != "dense":
         raise InputError("likelihood must be 'tree' (fast) or 'dense' (reference)")
     # Dense multivariate normal: O(N^3), only for checks and benchmarks.
     Z = _path_matrix(tree)
-    C = pt.dot(Z * lengths[None, :], Z.T)
     n, k = observed.shape
-    full = pt.linalg.kron(C, R) + pt.linalg.kron(pt.eye(n), E) + _error_blocks(err_var, n, k)
+    if regime is None:
+        C = pt.dot(Z * lengths[None, :], Z.T)
+        phylo = pt.linalg.kron(C, R)
+    else:  # O'Meara et al. 2006: sum over regimes of C_r (x) R_r
+        phylo = sum(pt.linalg.kron(pt.dot(Z * (lengths * pt.eq(regime, r))[None, :], Z.T), R[r])
+                    for r in range(n_regimes))
+    full = phylo + pt.linalg.kron(pt.eye(n), E) + _error_blocks(err_var, n, k)
     idx = np.flatnonzero(observed.ravel())
     cov = full[idx][:, idx]
     mean = pt.flatten(pt.outer(pt.ones(n), mu))[idx]
@@ -395,6 +413,10 @@ def build_model(
         if observed[:, j].sum() < 2:
             raise InputError(f"trait {t!r} has fewer than two observed species")
 
+    painting = None
+    if spec.regimes:
+        painting = rg.painting_from_spec(spec.regimes, tree, data.extra, data.values)
+        rg.check_painting(spec, painting, tree, k, notes)
     coords = {"species": data.species, "trait": traits, "trait_": traits}
     if predictors:
         coords["term"] = predictors
@@ -420,6 +442,14 @@ def build_model(
             R, mu = rate_terms(spec, y, observed, traits, t_mean, pri, priors)
             y_t = pm.Data("obs_values", np.where(observed, y, 0.0))
 
+        # --- regimes: one rate matrix per regime (and OU optima); model/regimes.py
+        regime, tip_mean = None, None
+        if painting is not None:
+            regime = pm.Data("tree_regime", painting.node_regime)
+            tree_data["regime"] = "tree_regime"
+            R, tip_mean = rg.regime_terms(spec, painting, tensors, parent, regime, R, mu, evo, y, observed,
+                                          traits, pri, priors, PriorInfo)
+
         # --- species-level covariance
         if spec.species_covariance:
             E = species_terms(y, observed, traits, pri, priors)
@@ -432,16 +462,22 @@ def build_model(
         err_var = _measurement_error(spec, data, err_cols, observed, priors, notes)
 
         # --- exact OU on a non-ultrametric tree: engine inputs of y' = mu + (y - mu) / D
-        ey, e_err, e_E, log_scale = y_t, err_var, E, pt.zeros(n)
+        ey, e_err, e_E, log_scale, e_mu = y_t, err_var, E, pt.zeros(n), mu
+        if tip_mean is not None:
+            # multi-optimum OU: the engine sees y minus each tip's expected value, root mean 0
+            tip_scale = ou_tip_scale(tensors, evo["alpha"])[:n] if exact_ou else pt.ones(n)
+            ey = pt.where(observed, y_t - tip_scale[:, None] * tip_mean, 0.0)
+            e_mu = pt.zeros(k)
         if exact_ou:
             scale = ou_tip_scale(tensors, evo["alpha"])
-            ey, e_err, e_E, log_scale = ou_rescaled_inputs(scale, y_t, observed, mu, err_var, E)
+            ey, e_err, e_E, log_scale = ou_rescaled_inputs(scale, ey, observed, e_mu, err_var, E)
         jacobian = -pt.dot(observed.sum(axis=1).astype(float), log_scale)
 
         obs_t = observed if likelihood == "dense" else pm.Data("obs_mask", observed.astype(np.int8))
         pm.Potential(
             "tree_loglik",
-            _likelihood(tree, parent, lengths, ey, obs_t, R, e_E, e_err, mu, likelihood) + jacobian,
+            _likelihood(tree, parent, lengths, ey, obs_t, R, e_E, e_err, e_mu, likelihood, regime,
+                        painting.n_regimes if painting is not None else 1) + jacobian,
         )
 
     summary_vars = summary_names(model.named_vars)  # catalogue order (model/quantities.py)
@@ -449,10 +485,11 @@ def build_model(
         model=model, spec=spec, data=data, traits=traits,
         y=np.where(observed, y, np.nan), observed=observed, priors=priors,
         summary_vars=summary_vars,
-        engine_inputs={"lengths": lengths, "y": ey, "R": R, "E": e_E, "err_var": e_err, "mu": mu,
-                       "log_scale": log_scale},
+        engine_inputs={"lengths": lengths, "y": ey, "R": R, "E": e_E, "err_var": e_err, "mu": e_mu,
+                       "log_scale": log_scale,
+                       **({} if tip_mean is None else {"tip_mean": tip_scale[:, None] * tip_mean})},
         tree_data=tree_data, likelihood=likelihood, notes=notes,
-        predictors=predictors, design=X,
+        predictors=predictors, design=X, painting=painting,
     )
 
 

@@ -119,6 +119,7 @@ def simulate_traits(
     se: Any = None,
     rng: RngLike = None,
     n_reps: int | None = None,
+    regime: Any = None,
 ) -> np.ndarray:
     """Exact Gaussian draws of species values on a tree.
 
@@ -139,6 +140,10 @@ def simulate_traits(
     rng : numpy Generator or int seed, optional
     n_reps : int, optional
         Number of independent replicates.
+    regime : array_like of int, (n_nodes,), optional
+        Regime of every branch (multi-rate Brownian motion, O'Meara et al. 2006):
+        ``R`` is then ``(n_regimes, k, k)`` and the branch above node v evolves
+        with ``R[regime[v]]``.
 
     Returns
     -------
@@ -147,7 +152,19 @@ def simulate_traits(
         the order of ``tree.tip_names``. Covariance of the flattened rows is
         ``kron(C, R) + kron(I, E) + diag(se^2)``.
     """
-    R = square_matrix(R, None, "R")
+    if regime is not None:
+        Rs = np.asarray(R, dtype=float)
+        if Rs.ndim != 3:
+            raise InputError(f"with regimes R must be (regimes x traits x traits); got shape {Rs.shape}.")
+        reg = np.asarray(regime, dtype=np.int64)
+        if reg.shape != (tree.n_nodes,) or reg.min() < 0 or reg.max() >= Rs.shape[0]:
+            raise InputError(f"regime must hold one regime number (0..{Rs.shape[0] - 1}) per node "
+                             f"({tree.n_nodes}); got shape {reg.shape}.")
+        Rs = np.stack([square_matrix(Rs[r], Rs.shape[1], f"R[{r}]") for r in range(Rs.shape[0])])
+        R = Rs[0]
+    else:
+        R = square_matrix(R, None, "R")
+        Rs, reg = R[None], np.zeros(tree.n_nodes, np.int64)
     k = R.shape[0]
     try:
         mu_v = np.broadcast_to(np.asarray(mu, dtype=float), (k,))
@@ -160,11 +177,12 @@ def simulate_traits(
     reps = 1 if n_reps is None else int(n_reps)
     if reps < 1:
         raise InputError("n_reps must be at least 1.")
-    L = matrix_root(R, "R")
+    Ls = np.stack([matrix_root(Rs[r], "R") for r in range(Rs.shape[0])])
     n, m = tree.n_tips, tree.n_nodes
 
-    # Increments on every branch at once; the pre-order pass only adds them up.
-    incr = gen.standard_normal((reps, m, k)) @ L.T
+    # Increments on every branch at once (each with its regime's matrix root); the
+    # pre-order pass only adds them up.
+    incr = np.einsum("rmj,mkj->rmk", gen.standard_normal((reps, m, k)), Ls[reg])
     incr *= np.sqrt(ln)[None, :, None]
     x = np.empty((reps, m, k))
     x[:, -1] = mu_v + incr[:, -1]
