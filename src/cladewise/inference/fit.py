@@ -320,6 +320,10 @@ def finish_fit(
         "timing": {**(timing or {}), "postprocess": t_post},
         "tree_newick": format_newick(built.data.tree, digits=17),
     }
+    if getattr(built, "painting", None) is not None:  # for the report's regime figure
+        pa = built.painting
+        info["regimes"] = {"name": pa.name, "regimes": list(pa.regimes),
+                           "node_regime": pa.node_regime.tolist(), "parent": built.data.tree.parent.tolist()}
     idata.posterior.attrs["cladewise_info"] = json.dumps(info, default=json_default)
     return FitResult(idata=idata, summary=summary, diagnostics=diag, built=built, info=info)
 

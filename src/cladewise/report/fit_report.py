@@ -14,6 +14,7 @@ from cladewise.errors import InputError
 from cladewise.inference.results import atomic_write, is_cladewise_output
 from cladewise.model.describe import evolution_description, measurement_error_description
 from cladewise.model.quantities import plain_words, quantity as catalogue_entry
+from cladewise.report.regime_plot import regime_figure
 from cladewise.report import figures as F
 from cladewise.report.data import FitView, read_fit_folder
 from cladewise.report.html import MARKER, esc, figure_html, fmt, page, table_html
@@ -364,6 +365,7 @@ def _reproduce_html(view: FitView, tables: dict[str, pd.DataFrame]) -> str:
 # --------------------------------------------------------------------------- build
 _FIGURES: list[tuple[str, str, str, Callable[[FitView], Any]]] = [
     ("tree", "data", "The tree and the species values", F.tree_figure),
+    ("regimes", "data", "Evolutionary regimes on the tree", regime_figure),
     ("posterior_densities", "results", "Posterior densities", F.posterior_densities),
     ("species_scatter", "results", "Species data and the evolutionary regression", F.data_scatter),
     ("contrasts", "results", "Independent contrasts", F.contrasts_plot),
@@ -395,6 +397,8 @@ def build_fit_report(out_dir: str | Path, progress: Progress | None = None) -> R
             fig, caption = fn(view)
         except F.Skip as why:
             res.skipped[name] = str(why)
+            if getattr(why, "quiet", False):  # a figure of an optional model part: no message
+                continue
             by_section.setdefault(section, []).append(
                 f'<p class="skip">{esc(title)}: not drawn, because {esc(why)}.</p>')
             res.timings[name] = time.perf_counter() - t0
