@@ -45,7 +45,7 @@ from typing import Any
 
 import numpy as np
 
-from cladewise.config.analysis import DATA, OU_ROOTS, SPEC_SECTIONS
+from cladewise.config.analysis import DATA, MODEL_REGIME_CLADE, OU_ROOTS, SPEC_SECTIONS
 from cladewise.config.tables import (
     Key,
     Table,
@@ -83,6 +83,19 @@ MODEL_PARAMETERS = Table("simulation.model_parameters", {
 _PER_TRAIT = ("float", "list[float]")
 _CORR = ("float", "list[list[float]]")
 
+#: ``[simulation.regimes]``: a rate shift in named clades (multi-rate Brownian motion)
+SIMULATION_REGIMES = Table("simulation.regimes", {
+    "background": Key("str", "regime outside the clades (rate ratio 1)", example='"background"'),
+    "clades": Key("table", "named clades, one table each (as in [model.regimes.clades])", required=True,
+                  table=Table("simulation.regimes.clades", any_key=Key("table", "a clade",
+                                                                         table=MODEL_REGIME_CLADE)),
+                  example='{ fast = { species = ["sp_a", "sp_b"] } }'),
+    "rate_ratios": Key("table", "rate multiplier of each clade regime, by regime name", required=True,
+                       table=Table("simulation.regimes.rate_ratios",
+                                   any_key=Key("float", "rate ratio", min=0, min_open=True)),
+                       example="{ fast = 4.0 }"),
+}, help="regimes painted on the tree")
+
 #: ``[simulation]``
 SIMULATION = Table("simulation", {
     "traits": Key("list[str]", "trait (column) names", required=True, unique=True, example='["mass", "speed"]'),
@@ -111,6 +124,8 @@ SIMULATION = Table("simulation", {
                  example='"bm"'),
     "model_parameters": Key("table", "the evolution model's parameter", table=MODEL_PARAMETERS,
                             default={}, example="{ lambda = 0.5 }"),
+    "regimes": Key("table", "a rate shift in named clades", table=SIMULATION_REGIMES,
+                   example='{ clades = { fast = { species = ["sp_a", "sp_b"] } }, rate_ratios = { fast = 4.0 } }'),
 }, help="settings of simulated data sets")
 
 
@@ -192,6 +207,21 @@ def _model_parameters(sim: dict[str, Any], where: Where) -> dict[str, Any]:
     return params
 
 
+def _regimes(reg: dict[str, Any], tree: FlatTree, where: Where) -> dict[str, Any]:
+    """Painting and per-regime rate multipliers of ``[simulation.regimes]``."""
+    from cladewise.model.regimes import painting_from_spec
+
+    painting = painting_from_spec(reg, tree)
+    ratios = dict(reg["rate_ratios"])
+    missing = [r for r in painting.regimes[1:] if r not in ratios]
+    extra = sorted(set(ratios) - set(painting.regimes[1:]))
+    if missing or extra:
+        raise InputError(f"{where.at('regimes')}: rate_ratios must give one ratio per clade regime "
+                         f"({', '.join(painting.regimes[1:])})" + (f"; unknown: {extra}" if extra else "") + ".")
+    return {"regime": painting.node_regime,
+            "regime_rate_ratios": [1.0] + [float(ratios[r]) for r in painting.regimes[1:]]}
+
+
 def load_simulation_spec(path: str | Path, seed: int | None = None) -> SimulationSpec:
     """Read and validate a simulation spec (format in the module docstring).
 
@@ -256,6 +286,8 @@ def load_simulation_spec(path: str | Path, seed: int | None = None) -> Simulatio
         model_params=params,
     )
     tree = read_tree(data["tree"])
+    if "regimes" in sim:
+        settings.update(_regimes(sim["regimes"], tree, where))
     return SimulationSpec(path=shown, tree=tree, settings=settings,
                           seed=int(seed if seed is not None else sim["seed"]),
                           replicates=int(sim["replicates"]))

@@ -253,6 +253,9 @@ def fit_tree_sample(
             # the per-draw log-likelihood and replicates must use this draw's own tree
             _set_tree_data(built, values)
             bt = dataclasses.replace(built, data=dataclasses.replace(built.data, tree=tree, notes=list(built.data.notes)))
+            if built.painting is not None:  # regimes repainted on this tree (tree_data_values)
+                bt.painting = dataclasses.replace(built.painting,
+                                                  node_regime=values[built.tree_data["regime"]])
             res = finish_fit(bt, idata, o, timing={"sample": ts}, predictive_draws=per_tree_pp, engine=engine)
             tp = time.perf_counter() - tp
             fits.append(res)

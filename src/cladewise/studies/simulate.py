@@ -148,6 +148,8 @@ def simulate_dataset(
     model: str = "bm",
     model_params: dict[str, float] | None = None,
     seed: int | np.random.Generator | None = 0,
+    regime: Any = None,
+    regime_rate_ratios: Any = None,
 ) -> SimulatedData:
     """Simulate a species table (and optionally specimen rows) on a tree.
 
@@ -180,6 +182,10 @@ def simulate_dataset(
         Branch-length transform applied with
         ``cladewise.model.evolution.transformed_lengths(tree, model, **model_params)``.
     seed : int or Generator
+    regime, regime_rate_ratios : optional
+        Multi-rate Brownian motion: ``regime`` (n_nodes,) ints (e.g. a
+        :class:`cladewise.data.regimes.Painting`'s ``node_regime``) and one rate
+        multiplier per regime; regime r evolves with ``ratio[r] * R``.
 
     Returns
     -------
@@ -204,7 +210,14 @@ def simulate_dataset(
     ln = branch_lengths(tree, lengths)
     gen = as_rng(seed)
 
-    values = simulate_traits(tree, R, mu, lengths=ln, E=E, rng=gen)
+    if regime is None:
+        values = simulate_traits(tree, R, mu, lengths=ln, E=E, rng=gen)
+    else:
+        ratios = np.asarray(regime_rate_ratios, dtype=float).reshape(-1)
+        if not np.all(np.isfinite(ratios)) or np.any(ratios <= 0):
+            raise InputError("regime rate ratios must be finite and > 0.")
+        values = simulate_traits(tree, ratios[:, None, None] * R[None], mu, lengths=ln, E=E, rng=gen,
+                                 regime=regime)
     species = list(tree.tip_names)
     truth: dict[str, Any] = {
         "traits": traits,
@@ -215,6 +228,8 @@ def simulate_dataset(
         "model": model,
         "model_parameters": params,
         "lengths": ln.copy(),
+        **({} if regime is None else {"regime": np.asarray(regime).tolist(),
+                                      "regime_rate_ratios": np.asarray(regime_rate_ratios, float).tolist()}),
         "seed": seed if isinstance(seed, (int, np.integer)) else None,
         "true_means": pd.DataFrame(values, index=pd.Index(species, name="species"), columns=traits),
         "missing_share": float(missing_share),
