@@ -116,6 +116,8 @@ class FitResult:
             "tree_newick": info.get("tree_newick"),
             "partial": bool(info.get("partial", False)),
             "cautions": CAUTIONS,
+            # regime models only: the painting (regime names, regime of every node's branch)
+            **({"regimes": info["regimes"]} if info.get("regimes") else {}),
         }
 
     def to_text(self) -> str:
