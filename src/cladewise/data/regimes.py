@@ -172,6 +172,9 @@ def paint_clades(
             raise InputError(f"clade {c.regime!r}: starts must be 'stem' or 'crown'; got {c.starts!r}")
         if c.regime not in regimes:
             regimes.append(c.regime)
+    if len(regimes) < 2:
+        raise InputError(f"painting {name!r}: every clade is in the background regime "
+                         f"{background!r}; give the clades another regime name")
     nodes = [_clade_node(tree, c) for c in clades]
     seen: dict[int, Clade] = {}
     for c, v in zip(clades, nodes):
