@@ -91,7 +91,7 @@ def _loglik_term(built, point):
     return float(fn(*[point[rv.name] for rv in m.free_RVs]))
 
 
-@pytest.mark.parametrize("rates,ultra", [("own", True), ("scaled", False)])
+@pytest.mark.parametrize("rates,ultra", [("own", True), pytest.param("scaled", False, marks=pytest.mark.slow)])
 def test_multirate_bm_likelihood_equals_dense_closed_form(rates, ultra):
     rng = np.random.default_rng(3)
     tree = random_tree(16, rng, ultra)
@@ -161,7 +161,7 @@ def test_path_sums_gradient_by_finite_differences():
         [rng.uniform(0, 1, tree.n_nodes)], rng=rng, mode="FAST_COMPILE")
 
 
-@pytest.mark.parametrize("k,ultra", [(1, False), (2, True)])
+@pytest.mark.parametrize("k,ultra", [(1, False), pytest.param(2, True, marks=pytest.mark.slow)])
 def test_multi_optimum_ou_likelihood_equals_hansen(k, ultra):
     rng = np.random.default_rng(11)
     tree = random_tree(14, rng, ultra)
