@@ -108,6 +108,10 @@ def dropped_notes(match: Any) -> list[str]:
         notes.append(f"{len(tree_drop)} tree tips without data were pruned")
     if table_drop:
         notes.append(f"{len(table_drop)} table species absent from the tree were left out")
+    kept = getattr(match, "kept_without_data", [])
+    if kept:
+        notes.append(f"{len(kept)} tree tips without a table row were kept (keep_tree_only): their values "
+                     "are predicted, not observed")
     return notes
 
 

@@ -380,6 +380,7 @@ def reconstruct(
         "node_mean": (("node", "trait"), nmean), "node_sd": (("node", "trait"), nsd),
         "node_hdi_low": (("node", "trait"), nlo), "node_hdi_high": (("node", "trait"), nhi),
         "tree_parent": (("tree_node",), tree.parent), "tree_length": (("tree_node",), tree.length),
+        "tip_name": (("tip",), np.asarray(tree.tip_names, dtype=str)),
     }
     if keep_draws is None:
         keep_draws = S * n_int * k <= KEEP_DRAWS_LIMIT
@@ -392,7 +393,6 @@ def reconstruct(
             if regression else "trait values of the ancestors")
     anc = xr.Dataset(dv, coords={**ncoords, **({"chain": [0], "draw": pick} if keep_draws else {})},
                      attrs={"what": what, "n_draws": int(good), "hdi_prob": HDI_PROB,
-                            "tip_names": list(tree.tip_names),
                             "method": "per posterior draw, one value from each node's conditional given the "
                                       "data (tree engine); mean and sd by total variance, HDI from the draws"})
 
