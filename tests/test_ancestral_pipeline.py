@@ -15,7 +15,7 @@ import pandas as pd
 
 from cladewise.config.analysis import load_spec
 from cladewise.pipeline import fit_from_spec
-from test_pipeline import _no_sampler, _spec, _write_data
+from test_pipeline import _fake_draws, _no_sampler, _spec, _write_data
 
 
 def test_tree_only_tips_are_kept_and_predicted_and_reported(tmp_path, monkeypatch):
@@ -59,8 +59,11 @@ def test_pruned_by_default_and_ancestral_can_be_turned_off(tmp_path, monkeypatch
 
 
 def test_tree_sample_fit_reconstructs_on_the_reference_tree(tmp_path, monkeypatch):
+    import cladewise.inference.sampling as sampling
+
     _write_data(tmp_path / "data", n=8, n_trees=2)
     _no_sampler(monkeypatch, interrupt=False)
+    monkeypatch.setattr(sampling, "sample", lambda built, opts, **kw: _fake_draws(built))
     fit_from_spec(_spec(tmp_path, trees=True), out=tmp_path / "fit", progress=False, n_trees=2)
     js = json.loads((tmp_path / "fit" / "summary.json").read_text())
     assert js["ancestral"]["reference_tree_only"] is True
