@@ -68,7 +68,6 @@ def dense_conditional(Cn, R, E, err, mu, y, observed):
     Y_i = X_i + eps_i (eps ~ N(0, E)); observations Y_i + e_i (e ~ N(0, err_i)).
     """
     N, k = y.shape
-    n = Cn.shape[0]
     covX = np.kron(Cn, R)
     covY = np.kron(Cn[:N, :N], R) + np.kron(np.eye(N), E)
     errb = scipy.linalg.block_diag(*[np.diag(e) if e.ndim == 1 else e for e in err])

@@ -202,7 +202,7 @@ def ancestral_section(view, fig_dir: Path, tables: dict[str, pd.DataFrame]
             "hdi_low": pred["predicted_hdi_low"].values, "hdi_high": pred["predicted_hdi_high"].values})
         tables["predictions"] = pt
         parts.append("<h3>Predictions for species without data (not observations)</h3>"
-                     f'<div class="banner note"><b>These values are PREDICTIONS</b>, not data: the model\'s '
+                     '<div class="banner note"><b>These values are PREDICTIONS</b>, not data: the model\'s '
                      "estimate of each species' true mean for a trait it has no value for, given its other traits "
                      "and its relatives. Measurement error is not added. Do not use them as if they were "
                      "measured.</div>"
