@@ -60,6 +60,10 @@ def _run(args: argparse.Namespace) -> int:
     print(result.to_text())
     extra = "".join(f", {name}" for name in result.tables)
     print(f"\nSaved: {args.out}/posterior.nc, summary.csv, summary.json{extra}")
+    anc = result.info.get("ancestral")
+    if anc:
+        print(f"Ancestral values of {anc['n_nodes']} internal nodes from {anc['n_draws']} draws (ancestral.csv); "
+              f"{anc['n_predicted_cells']} missing cells predicted (predictions.csv: predictions, not data)")
     if not args.no_report:
         print(f"Report: {write_fit_report(args.out)}")
     if args.strict and not result.diagnostics.ok:

@@ -58,7 +58,8 @@ def plot_values_on_tree(tree: FlatTree, node_values: np.ndarray, tip_values: np.
     fig, ax = new_figure(7.5, height)
     cmap = value_colormap()
     lw = (0.6 if n > 600 else 1.0) if compact else 2.2
-    lc = LineCollection(segs, cmap=cmap, linewidths=lw)
+    # projecting caps close the hairline gaps between the pieces of a branch
+    lc = LineCollection(segs, cmap=cmap, linewidths=lw, capstyle="projecting")
     lc.set_array(vals.reshape(-1))
     lc.set_clim(lo, hi)
     ax.add_collection(lc)
@@ -170,8 +171,11 @@ def ancestral_section(view, fig_dir: Path, tables: dict[str, pd.DataFrame]
                     is_pred[i] = True
         if view.kind == "regression":
             tips = np.full(n, np.nan)  # residuals at the tips are not shown; branches end at their node
+        from cladewise.report.figures import trait_label
+
+        shown = trait_label(view, trait) if view.kind != "regression" else trait
         fig = plot_values_on_tree(tree, ds["node_mean"].values[:, j], tips, is_pred,
-                                  f"{trait} (posterior mean)")
+                                  f"{shown} (posterior mean)")
         cap = (f"Posterior mean of {trait} at every ancestor, painted along the branches (dark: low, "
                "light: high; the scale is monotone in lightness and reads in greyscale). Each branch runs "
                "from its parent's value to its child's" + (": open circles mark species whose value is a "
