@@ -311,3 +311,32 @@ def test_node_names_give_a_defining_pair():
         kids = [c for c in range(tree.n_nodes - 1) if tree.parent[c] == r.node]
         sides = [next(i for i, c in enumerate(kids) if t in below[c]) for t in (a, b)]
         assert sides[0] != sides[1]
+
+
+def test_summaries_integrate_over_parameter_draws():
+    # Two different parameter draws: the posterior of a node value is the equal mixture of
+    # the two conditionals, whose mean is the average of the means and whose variance is
+    # the average variance plus the variance of the means (law of total variance).
+    rng = np.random.default_rng(6)
+    tree = random_tree(10, rng)
+    data, traits = make_data(tree, 1, rng, se=True)
+    built = build_model(data, ModelSpec(kind="independent", traits=traits, evolution="lambda",
+                                        measurement_error="se"))
+    _, p1 = fixed_posterior(built, 1, seed=1)
+    _, p2 = fixed_posterior(built, 1, seed=2)
+    post = {k: np.stack([p1[k], p2[k]])[None] for k in p1}
+    rec = reconstruct(built, az.from_dict(posterior=post))
+    fn = built.engine_function(extra=("node_scale", "E_species"))
+    err = np.where(built.observed, data.se.to_numpy() ** 2, 0.0)
+    means, variances = [], []
+    for p in (p1, p2):
+        d = fn(p)
+        Cn = bm_node_cov(tree, transformed_lengths(tree, "lambda", lam=float(p["lambda"])))
+        nm, nc, _, _ = dense_conditional(Cn, d["R"], np.zeros((1, 1)), err, d["mu"], np.nan_to_num(built.y),
+                                         built.observed)
+        means.append(nm[tree.n_tips:, 0])
+        variances.append(nc[tree.n_tips:, 0, 0])
+    means, variances = np.array(means), np.array(variances)
+    np.testing.assert_allclose(rec.ancestral["node_mean"].values[:, 0], means.mean(0), rtol=1e-7, atol=1e-9)
+    total = variances.mean(0) + means.var(0)
+    np.testing.assert_allclose(rec.ancestral["node_sd"].values[:, 0], np.sqrt(total), rtol=1e-6)

@@ -58,7 +58,8 @@ __all__ = [
 MAX_DRAWS = 1000
 #: ``cladewise fit`` reconstructs by default up to this many species (``--no-ancestral`` turns it off)
 MAX_TIPS = 20_000
-#: node draws are saved in posterior.nc only up to this many values (draws x nodes x traits)
+#: node (and predicted-cell) draws are saved in posterior.nc only up to this many values
+#: (draws x nodes x traits; float32, so at most 16 MB)
 KEEP_DRAWS_LIMIT = 4_000_000
 HDI_PROB = 0.95
 
@@ -413,8 +414,14 @@ def reconstruct(
             "what": "prediction: true species mean (no measurement error)",
         })
         cdims = ("cell",)
+        pv = {}
+        if S * len(cells) <= KEEP_DRAWS_LIMIT:
+            pv["predicted_value"] = (("chain", "draw", "cell"), pred_draws[:, ci, cj][None])
+        else:
+            notes.append(f"the draws of the {len(cells):,} predicted cells were not saved (over "
+                         f"{KEEP_DRAWS_LIMIT:,} values); predictions.csv holds their summaries")
         predicted = xr.Dataset(
-            {"predicted_value": (("chain", "draw", "cell"), pred_draws[:, ci, cj][None]),
+            {**pv,
              "predicted_mean": (cdims, pmean[ci, cj]), "predicted_sd": (cdims, psd[ci, cj]),
              "predicted_hdi_low": (cdims, plo[ci, cj]), "predicted_hdi_high": (cdims, phi[ci, cj])},
             coords={"chain": [0], "draw": pick, "cell": np.arange(len(cells)),
