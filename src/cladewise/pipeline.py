@@ -108,6 +108,10 @@ def dropped_notes(match: Any) -> list[str]:
         notes.append(f"{len(tree_drop)} tree tips without data were pruned")
     if table_drop:
         notes.append(f"{len(table_drop)} table species absent from the tree were left out")
+    kept = getattr(match, "kept_without_data", [])
+    if kept:
+        notes.append(f"{len(kept)} tree tips without a table row were kept (keep_tree_only): their values "
+                     "are predicted, not observed")
     return notes
 
 
@@ -156,6 +160,7 @@ def fit_from_spec(
     keep_partial: bool = False,
     progress: bool | None = True,
     command: str | None = None,
+    ancestral: bool | None = None,
     **sampling_overrides: Any,
 ) -> FitResult:
     """Fit the model a spec describes, on its tree or over a tree sample, and save it.
@@ -182,6 +187,10 @@ def fit_from_spec(
         Progress bar and per-tree lines (``None``: only on a terminal).
     command : str, optional
         The command line that started the run, recorded in summary.json.
+    ancestral : bool, optional
+        Add ancestral values and predictions of missing cells
+        (:mod:`cladewise.inference.ancestral`); default: up to
+        :data:`~cladewise.inference.ancestral.MAX_TIPS` species.
     **sampling_overrides
         Replace ``[sampling]`` values (``None`` is ignored), e.g. ``draws=500``.
 
@@ -224,9 +233,27 @@ def fit_from_spec(
             f"interrupted: the draws made so far were saved to {out}, marked partial", partial=part, saved=target
         ) from None
     _describe_run(result, prep, command, pooled)
+    _add_ancestral(result, prep, ancestral, pooled)
     if target is not None:
         result.save(target, overwrite=overwrite, inputs=prep.input_paths)
     return result
+
+
+def _add_ancestral(result: FitResult, prep: PreparedAnalysis, ancestral: bool | None, pooled: bool) -> None:
+    from cladewise.inference.ancestral import MAX_TIPS, add_reconstruction
+
+    n = prep.model_data.tree.n_tips
+    if ancestral is None:
+        ancestral = n <= MAX_TIPS
+        if not ancestral:
+            result.info["notes"] = list(result.info.get("notes", [])) + [
+                f"ancestral values were not computed by default for {n:,} species (over {MAX_TIPS:,}); "
+                "ask for them with --ancestral"]
+    if ancestral and "tip_mean" in result.built.engine_inputs:
+        result.info["notes"] = list(result.info.get("notes", [])) + [
+            "ancestral values and predictions are not computed for multi-optimum OU models yet"]
+    elif ancestral:
+        add_reconstruction(result, tree=prep.model_data.tree, pooled=pooled)
 
 
 def _describe_run(result: FitResult, prep: PreparedAnalysis, command: str | None, pooled: bool) -> None:

@@ -31,6 +31,12 @@ def _arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--strict", action="store_true",
                    help="exit with status 3 when the convergence diagnostics find a problem")
     p.add_argument("--no-report", action="store_true", help="do not write report.html")
+    anc = p.add_mutually_exclusive_group()
+    anc.add_argument("--no-ancestral", dest="ancestral", action="store_false", default=None,
+                     help="skip ancestral values and predictions of missing cells (on by default up "
+                          "to 20,000 species)")
+    anc.add_argument("--ancestral", dest="ancestral", action="store_true", default=None,
+                     help="compute ancestral values and predictions even above 20,000 species")
     p.add_argument("--keep-partial", action="store_true",
                    help="on Ctrl-C, save the draws made so far to --out, marked as partial "
                         "(by default an interrupted fit saves nothing)")
@@ -48,11 +54,16 @@ def _run(args: argparse.Namespace) -> int:
 
     result = fit_from_spec(
         args.spec, out=args.out, overwrite=args.overwrite, trees=args.trees, n_trees=args.n_trees,
-        keep_partial=args.keep_partial, progress=None, command=args.command_line,
+        keep_partial=args.keep_partial, progress=None, command=args.command_line, ancestral=args.ancestral,
         **{k: getattr(args, k) for k in _SAMPLING},
     )
     print(result.to_text())
-    print(f"\nSaved: {args.out}/posterior.nc, summary.csv, summary.json")
+    extra = "".join(f", {name}" for name in result.tables)
+    print(f"\nSaved: {args.out}/posterior.nc, summary.csv, summary.json{extra}")
+    anc = result.info.get("ancestral")
+    if anc:
+        print(f"Ancestral values of {anc['n_nodes']} internal nodes from {anc['n_draws']} draws (ancestral.csv); "
+              f"{anc['n_predicted_cells']} missing cells predicted (predictions.csv: predictions, not data)")
     if not args.no_report:
         print(f"Report: {write_fit_report(args.out)}")
     if args.strict and not result.diagnostics.ok:

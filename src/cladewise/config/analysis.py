@@ -18,6 +18,7 @@ add it to :data:`MODEL` (and the field to :class:`cladewise.model.build.ModelSpe
     n_suffix = "_n"              # sample-size columns <trait>_n
     sd_suffix = "_sd"            # standard-deviation columns <trait>_sd
     drop_unmatched = false       # true: leave out table species absent from the tree
+    keep_tree_only = false       # true: keep tree tips without a row (their values are predicted)
     ultrametric_rtol = 1e-6      # tolerance of the ultrametric check
 
 At least one of ``tree`` and ``trees`` is required; with only ``trees`` the first
@@ -89,6 +90,8 @@ DATA = Table("data", {
     "n_suffix": Key("str", "ending of sample-size columns, <trait>_n", example='"_n"'),
     "sd_suffix": Key("str", "ending of standard-deviation columns, <trait>_sd", example='"_sd"'),
     "drop_unmatched": Key("bool", "true: leave out table species absent from the tree", example="false"),
+    "keep_tree_only": Key("bool", "true: keep tree tips that have no row in the table (all traits missing; "
+                          "their values are predicted) instead of pruning them", example="false"),
     "ultrametric_rtol": Key("float", "relative tolerance of the ultrametric check", min=0.0, max=1.0,
                             max_open=True, example="1e-6"),
     "separator": Key("str", "column separator of the trait table: auto (detected), comma, semicolon, tab, "
@@ -219,6 +222,7 @@ class DataSpec:
     drop_unmatched: bool = False
     ultrametric_rtol: float = 1e-6
     separator: str = "auto"
+    keep_tree_only: bool = False
     decimal: str = "."
 
 
@@ -285,6 +289,7 @@ def prepare_data(
     ultrametric_rtol: float = 1e-6,
     separator: str | None = "auto",
     decimal: str = ".",
+    keep_tree_only: bool = False,
 ) -> tuple[MatchResult, DataSummary]:
     """Files to a validated, matched tree and trait table, and its summary.
 
@@ -328,7 +333,7 @@ def prepare_data(
         separator=parse_separator(separator),
         decimal=decimal,
     )
-    match = match_names(ref, td, drop_unmatched=drop_unmatched, trees=sample)
+    match = match_names(ref, td, drop_unmatched=drop_unmatched, trees=sample, keep_tree_only=keep_tree_only)
     summary = summarise_data(
         match,
         tree_source=str(tree if tree is not None else f"{trees} (tree 1)"),
@@ -356,4 +361,5 @@ def load_data(spec: Spec) -> tuple[MatchResult, DataSummary]:
         ultrametric_rtol=d.ultrametric_rtol,
         separator=d.separator,
         decimal=d.decimal,
+        keep_tree_only=d.keep_tree_only,
     )

@@ -54,6 +54,7 @@ class MatchResult:
     tree_names: dict[str, str] = field(default_factory=dict)
     n_tree_tips: int = 0
     n_table_species: int = 0
+    kept_without_data: list[str] = field(default_factory=list)
 
     @property
     def dropped_from_tree(self) -> list[Dropped]:
@@ -94,13 +95,16 @@ def match_names(
     traits: TraitData,
     drop_unmatched: bool = False,
     trees: Sequence[FlatTree] = (),
+    keep_tree_only: bool = False,
 ) -> MatchResult:
     """Align a tree (and optionally a tree sample with the same tips) to a table.
 
     Tree tips without a table row are pruned (see :func:`cladewise.data.trees.prune_to`)
     and recorded. Table species without a tip stop the run with an InputError
     listing them and near misses, unless ``drop_unmatched`` is True, in which case
-    they are left out and recorded too.
+    they are left out and recorded too. With ``keep_tree_only`` tree tips without a
+    row are kept instead, with every trait missing (their values can be predicted),
+    and listed in ``kept_without_data``.
 
     Returns
     -------
@@ -138,6 +142,12 @@ def match_names(
             "are needed. Check that the files belong together."
         )
     row_keys = {name_key(s): s for s in missing}
+    kept_empty: list[str] = []
+    if keep_tree_only and tip_only:
+        kept_empty = list(tip_only)
+        traits = _with_empty_rows(traits, kept_empty)
+        kept = kept + kept_empty
+        tip_only = []
     for t in tip_only:
         dropped.append(
             Dropped(t, "tree", "no row in the trait table (pruned)", _suggest(t, row_keys) if row_keys else ())
@@ -152,8 +162,29 @@ def match_names(
         dropped=dropped,
         tree_names=tree_names,
         n_tree_tips=tree.n_tips,
-        n_table_species=traits.n_species,
+        n_table_species=traits.n_species - len(kept_empty),
+        kept_without_data=kept_empty,
     )
+
+
+def _with_empty_rows(traits: TraitData, names: list[str]) -> TraitData:
+    """The table with one all-missing row per name appended (tree tips kept without data)."""
+    import dataclasses
+
+    import numpy as np
+
+    def pad(a):
+        return None if a is None else np.vstack([a, np.full((len(names), a.shape[1]), np.nan)])
+
+    extra = traits.extra
+    if extra is not None:
+        import pandas as pd
+
+        extra = pd.concat([extra, pd.DataFrame(index=range(len(names)), columns=extra.columns)],
+                          ignore_index=True)
+    return dataclasses.replace(traits, species=list(traits.species) + list(names), mean=pad(traits.mean),
+                               se=pad(traits.se), n=pad(traits.n), within_var=pad(traits.within_var),
+                               extra=extra)
 
 
 def _align(tree: FlatTree, tree_names: dict[str, str], kept: list[str]) -> FlatTree:

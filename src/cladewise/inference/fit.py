@@ -58,6 +58,7 @@ class FitResult:
     diagnostics: Diagnostics
     built: BuiltModel | None
     info: dict[str, Any] = field(default_factory=dict)
+    tables: dict[str, pd.DataFrame] = field(default_factory=dict)  # extra CSV files: name -> table
 
     def save(self, out_dir: str | Path, overwrite: bool = False, inputs: Sequence[str | Path] = ()) -> Path:
         """Write posterior.nc, summary.csv and summary.json into ``out_dir``.
@@ -78,6 +79,8 @@ class FitResult:
         self.idata.to_netcdf(folder / "posterior.nc")
         self.summary.to_csv(folder / "summary.csv", index=False)
         (folder / "summary.json").write_text(json.dumps(self.to_json(), indent=2, default=json_default))
+        for name, table in self.tables.items():
+            table.to_csv(folder / name, index=False)
 
     def mark_partial(self, reason: str) -> None:
         """Mark this fit as built from the draws made before an interrupt."""
@@ -115,6 +118,7 @@ class FitResult:
             "environment": info.get("environment", {}),
             "tree_newick": info.get("tree_newick"),
             "partial": bool(info.get("partial", False)),
+            "ancestral": info.get("ancestral"),
             "cautions": CAUTIONS,
             # regime models only: the painting (regime names, regime of every node's branch)
             **({"regimes": info["regimes"]} if info.get("regimes") else {}),

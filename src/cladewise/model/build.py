@@ -244,7 +244,9 @@ class BuiltModel:
     summary_vars: list[str]
     # tensors: lengths, y, R, E, err_var, mu, log_scale. Under OU on a non-ultrametric tree
     # y, E and err_var are those of y' = mu + (y - mu) / D and log_scale = log D (else 0):
-    # a log-likelihood over some cells subtracts log_scale once per observed cell
+    # a log-likelihood over some cells subtracts log_scale once per observed cell.
+    # node_scale (n_nodes): OU's D_v, trait = mu + D_v (engine value - mu) at every node
+    # (1 otherwise); E_species: the species-level covariance before any OU rescaling
     engine_inputs: dict[str, Any]
     tree_data: dict[str, str]  # tree array name -> pm.Data name
     likelihood: str
@@ -262,14 +264,15 @@ class BuiltModel:
         """'joint' (all traits of a species) or 'conditional' (response given predictors)."""
         return "conditional" if self.spec.kind == "regression" else "joint"
 
-    def engine_function(self):
+    def engine_function(self, extra: tuple[str, ...] = ()):
         """Compiled function: free random variables -> engine inputs (numpy).
 
         Used to evaluate per-draw quantities (pointwise log-likelihood, predictive
         draws) after sampling without storing large arrays in the posterior.
+        ``extra`` adds other entries of ``engine_inputs`` (e.g. ``"node_scale"``).
         """
-        names = ["lengths", "y", "R", "E", "err_var", "mu", "log_scale"]
-        names += [n for n in ("tip_mean",) if n in self.engine_inputs]
+        names = ["lengths", "y", "R", "E", "err_var", "mu", "log_scale", *extra]
+        names += [n for n in ("tip_mean",) if n in self.engine_inputs and n not in names]
         outs = [pt.as_tensor_variable(self.engine_inputs[k]) for k in names]
         fn = pytensor.function(self.model.free_RVs, outs, on_unused_input="ignore")
         rv_names = [rv.name for rv in self.model.free_RVs]
@@ -463,14 +466,15 @@ def build_model(
 
         # --- exact OU on a non-ultrametric tree: engine inputs of y' = mu + (y - mu) / D
         ey, e_err, e_E, log_scale, e_mu = y_t, err_var, E, pt.zeros(n), mu
+        # OU: node values are mu + D_v (z_v - mu), z Brownian on the OU lengths (model/evolution.py)
+        node_scale = ou_tip_scale(tensors, evo["alpha"]) if spec.evolution == "ou" else pt.ones(tree.n_nodes)
         if tip_mean is not None:
             # multi-optimum OU: the engine sees y minus each tip's expected value, root mean 0
-            tip_scale = ou_tip_scale(tensors, evo["alpha"])[:n] if exact_ou else pt.ones(n)
+            tip_scale = node_scale[:n] if exact_ou else pt.ones(n)
             ey = pt.where(observed, y_t - tip_scale[:, None] * tip_mean, 0.0)
             e_mu = pt.zeros(k)
         if exact_ou:
-            scale = ou_tip_scale(tensors, evo["alpha"])
-            ey, e_err, e_E, log_scale = ou_rescaled_inputs(scale, ey, observed, e_mu, err_var, E)
+            ey, e_err, e_E, log_scale = ou_rescaled_inputs(node_scale, ey, observed, e_mu, err_var, E)
         jacobian = -pt.dot(observed.sum(axis=1).astype(float), log_scale)
 
         obs_t = observed if likelihood == "dense" else pm.Data("obs_mask", observed.astype(np.int8))
@@ -486,7 +490,7 @@ def build_model(
         y=np.where(observed, y, np.nan), observed=observed, priors=priors,
         summary_vars=summary_vars,
         engine_inputs={"lengths": lengths, "y": ey, "R": R, "E": e_E, "err_var": e_err, "mu": e_mu,
-                       "log_scale": log_scale,
+                       "log_scale": log_scale, "node_scale": node_scale, "E_species": E,
                        **({} if tip_mean is None else {"tip_mean": tip_scale[:, None] * tip_mean})},
         tree_data=tree_data, likelihood=likelihood, notes=notes,
         predictors=predictors, design=X, painting=painting,

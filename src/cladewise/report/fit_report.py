@@ -421,6 +421,11 @@ def build_fit_report(out_dir: str | Path, progress: Progress | None = None) -> R
     sections.append(("diagnostics", "Sampling diagnostics",
                      _diagnostics_html(view) + "".join(by_section.get("diagnostics", []))))
     sections.append(("results", "Results", _results_html(view, tables) + "".join(by_section.get("results", []))))
+    from cladewise.report.ancestral_report import ancestral_section
+
+    anc_html, anc_figs = ancestral_section(view, fig_dir, tables)
+    res.figures += anc_figs
+    sections.append(("ancestral", "Ancestral values and predictions", anc_html))
     checks = "".join(by_section.get("checks", []))
     if "pareto_k" in tables:
         pk = tables["pareto_k"]

@@ -17,7 +17,8 @@ matplotlib.use("Agg")  # files only, never a window
 
 import matplotlib.pyplot as plt  # noqa: E402
 
-__all__ = ["OKABE_ITO", "LINESTYLES", "MARKERS", "SavedFigure", "save_figure", "new_figure"]
+__all__ = ["OKABE_ITO", "LINESTYLES", "MARKERS", "SavedFigure", "save_figure", "new_figure",
+           "VALUE_RAMP", "value_colormap"]
 
 OKABE_ITO = {
     "black": "#000000",
@@ -35,6 +36,16 @@ LINESTYLES = ["-", "--", ":", "-."]
 MARKERS = ["o", "s", "^", "D", "v", "P"]
 #: Sequential colour map that is monotone in lightness (prints in greyscale).
 SEQUENTIAL = "cividis"
+#: Our ramp for values painted on the tree (ancestral values): deep indigo through teal
+#: and moss to pale straw; CIE L* rises at every step (tests/report/test_ancestral_report.py).
+VALUE_RAMP = ["#1d1340", "#33336e", "#2e5f86", "#2f8a86", "#68ad6e", "#b9cc72", "#f3ecb4"]
+
+
+def value_colormap():
+    """The :data:`VALUE_RAMP` as a matplotlib colour map (dark = low, light = high)."""
+    from matplotlib.colors import LinearSegmentedColormap
+
+    return LinearSegmentedColormap.from_list("cladewise_values", VALUE_RAMP)
 
 _RC = {
     "font.size": 9,
