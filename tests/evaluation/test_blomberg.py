@@ -95,8 +95,9 @@ def test_k_near_one_under_brownian_motion_and_near_zero_without_structure():
     # from memory: under Brownian motion K averages about 1 (Blomberg et al. 2003 scaled K
     # by its Brownian-motion expectation); for values independent of the tree (a star-like
     # covariance) K is near 0 on a tree whose species share long stretches of history.
-    # How near 0 depends on the tree (on a 40-tip coalescent tree it averages about 0.4),
-    # so the star case is checked on a 100-tip tree and on one with short terminal branches.
+    # How near 0 depends on the tree (measured: about 0.4 on a 40-tip coalescent tree, 0.2
+    # on this 100-tip one, 0.01 with short terminal branches), so the star case is checked
+    # loosely on the 100-tip tree and tightly on the same topology with short terminal branches.
     rng = np.random.default_rng(2024)
     tree = random_tree(100, rng, ultrametric=True)
     C = dense_cov(tree)
@@ -104,7 +105,7 @@ def test_k_near_one_under_brownian_motion_and_near_zero_without_structure():
     se = k_bm.std() / np.sqrt(k_bm.size)
     assert abs(k_bm.mean() - 1.0) < 0.08, (k_bm.mean(), se)
     k_star, _ = k_statistics(tree, rng.normal(size=(100, 2000)))
-    assert k_star.mean() < 0.2, k_star.mean()
+    assert k_star.mean() < 0.35, k_star.mean()
     ln = tree.length.copy()
     ln[:100] = 0.05  # the species hang on short branches below a deep shared history
     short = FlatTree(tree.parent, ln, tree.tip_names)
