@@ -49,8 +49,13 @@ def _data(tree: Any, table: Any, data_args: dict[str, Any]):
     from cladewise.model.build import ModelData
     from cladewise.pipeline import dropped_notes
 
+    import pandas as pd
+    from pathlib import Path
+
     if tree is None:
         raise InputError("give a tree: a file path, a Newick string or a read tree.")
+    if not isinstance(table, (pd.DataFrame, str, Path)):
+        raise InputError(f"the trait table must be a pandas DataFrame or a file path; got {type(table).__name__}.")
     match, summary = prepare_data(table, tree, **data_args)
     data = ModelData.from_match(match)
     data.notes.extend(dropped_notes(match))
