@@ -138,12 +138,15 @@ def test_permutation_p_value_formula_and_seed():
     tree = random_tree(12, rng)
     y = rng.normal(size=12)
     a = blomberg_k(tree, y, permutations=499, seed=9)
-    b = blomberg_k(tree, y, permutations=499, seed=9, chunk=50)
+    b = blomberg_k(tree, y, permutations=499, seed=9)
     assert a.p_value == b.p_value and np.array_equal(a.null, b.null)
     assert a.p_value == (1 + np.sum(a.null >= a.k)) / 500
-    # the null distribution: K of shuffled values, each equal to the dense formula
-    shuffled = np.random.default_rng(9).permutation(y)
-    assert dense_k(tree, shuffled) == pytest.approx(a.null[0], rel=1e-9)
+    # the null distribution: K of shuffled values (the same draws of the generator),
+    # each equal to the dense formula
+    shuffled = np.random.default_rng(9).permuted(np.broadcast_to(y, (256, 12)), axis=1)
+    for r in range(3):
+        assert sorted(shuffled[r]) == sorted(y)
+        assert dense_k(tree, shuffled[r]) == pytest.approx(a.null[r], rel=1e-9)
 
 
 def test_k_bad_input():

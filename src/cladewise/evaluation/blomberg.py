@@ -41,12 +41,12 @@ __all__ = ["KResult", "blomberg_k", "k_statistics"]
 
 @njit(cache=True, nogil=True)
 def _prune_many(ptr, kids, length, Y):  # pragma: no cover - compiled
-    """GLS root means and quadratic forms of every column of ``Y`` (tips x columns).
+    """GLS root means and quadratic forms of every row of ``Y`` (columns x tips).
 
     Returns (root means, quadratic forms, 1'C^-1 1); the extended variances depend on
     the tree only and are computed once.
     """
-    n, P = Y.shape
+    P, n = Y.shape
     N = length.shape[0]
     V = length.copy()
     prec = np.zeros(N)
@@ -63,7 +63,7 @@ def _prune_many(ptr, kids, length, Y):  # pragma: no cover - compiled
     m = np.empty(N)
     for p in range(P):
         for i in range(n):
-            m[i] = Y[i, p]
+            m[i] = Y[p, i]
         quad = 0.0
         for node in range(n, N):
             s = 0.0
@@ -93,6 +93,26 @@ def _check_lengths(tree: FlatTree) -> None:
         )
 
 
+def _tree_parts(tree: FlatTree) -> tuple:
+    _check_lengths(tree)
+    ptr, kids = tree.children()
+    trace_c = float(np.sum(tree.heights()[: tree.n_tips]) + tree.n_tips * tree.length[tree.root])
+    return np.asarray(ptr, np.int64), np.asarray(kids, np.int64), tree.length.astype(float), trace_c
+
+
+def _k_of_rows(parts: tuple, rows: np.ndarray) -> tuple[np.ndarray, dict[str, float]]:
+    ptr, kids, length, trace_c = parts
+    n = rows.shape[1]
+    # shifting y does not change K; centring keeps the sums of squares well conditioned
+    rows = np.ascontiguousarray(rows - rows.mean(axis=1, keepdims=True))
+    means, quads, ones_prec = _prune_many(ptr, kids, length, rows)
+    expected = (trace_c - n / ones_prec) / (n - 1)
+    resid_ss = np.sum((rows - means[:, None]) ** 2, axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        k = (resid_ss / quads) / expected
+    return k, {"trace_C": trace_c, "ones_Cinv_ones": float(ones_prec), "expected_ratio": float(expected)}
+
+
 def k_statistics(tree: FlatTree, Y: np.ndarray) -> tuple[np.ndarray, dict[str, float]]:
     """Blomberg's K of every column of ``Y`` (tips in tree order x columns).
 
@@ -102,24 +122,12 @@ def k_statistics(tree: FlatTree, Y: np.ndarray) -> tuple[np.ndarray, dict[str, f
         ``K`` per column and the tree-only parts: ``trace_C``, ``ones_Cinv_ones`` and
         the Brownian-motion expectation of the ratio, ``expected_ratio``.
     """
-    Y = np.ascontiguousarray(Y, dtype=float)
+    Y = np.asarray(Y, dtype=float)
     if Y.ndim == 1:
         Y = Y[:, None]
-    n = tree.n_tips
-    if Y.shape[0] != n:
+    if Y.shape[0] != tree.n_tips:
         raise ValueError("one row of Y per tip expected")
-    _check_lengths(tree)
-    # shifting y does not change K; centring keeps the sums of squares well conditioned
-    Y = Y - Y.mean(axis=0)
-    ptr, kids = tree.children()
-    means, quads, ones_prec = _prune_many(np.asarray(ptr, np.int64), np.asarray(kids, np.int64),
-                                          tree.length.astype(float), Y)
-    trace_c = float(np.sum(tree.heights()[:n]) + n * tree.length[tree.root])
-    expected = (trace_c - n / ones_prec) / (n - 1)
-    resid_ss = np.sum((Y - means) ** 2, axis=0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        k = (resid_ss / quads) / expected
-    return k, {"trace_C": trace_c, "ones_Cinv_ones": float(ones_prec), "expected_ratio": float(expected)}
+    return _k_of_rows(_tree_parts(tree), Y.T)
 
 
 @dataclass
@@ -198,20 +206,19 @@ def blomberg_k(tree: FlatTree, values: Any, *, permutations: int = 999, seed: in
         y = y[have]
     if np.ptp(y) == 0:
         raise InputError("Blomberg's K is undefined for a trait with the same value in every species.")
-    k_obs, _ = k_statistics(tree, y)
-    ptr, kids = tree.children()
-    gls = float(_prune_many(np.asarray(ptr, np.int64), np.asarray(kids, np.int64), tree.length.astype(float),
-                            np.ascontiguousarray(y[:, None]))[0][0])
+    parts = _tree_parts(tree)
+    k_obs, _ = _k_of_rows(parts, y[None, :])
+    gls = float(_prune_many(parts[0], parts[1], parts[2], np.ascontiguousarray(y[None, :]))[0][0])
     null = np.empty(0)
     p = float("nan")
     if permutations:
         rng = np.random.default_rng(seed)
-        parts = []
+        chunks = []
         for start in range(0, permutations, chunk):
             m = min(chunk, permutations - start)
-            Y = np.stack([rng.permutation(y) for _ in range(m)], axis=1)
-            parts.append(k_statistics(tree, Y)[0])
-        null = np.concatenate(parts)
+            # each row an independent shuffle of the values across the tips
+            chunks.append(_k_of_rows(parts, rng.permuted(np.broadcast_to(y, (m, y.size)), axis=1))[0])
+        null = np.concatenate(chunks)
         p = float((1 + np.sum(null >= k_obs[0])) / (permutations + 1))
     return KResult(k=float(k_obs[0]), p_value=p, null=null, n_species=int(tree.n_tips), dropped=dropped,
                    gls_mean=gls, permutations=int(permutations), seed=seed)
