@@ -263,7 +263,12 @@ def trait_signal(
         if with_lambda:
             if progress is not None:
                 progress(f"Fitting Pagel's lambda for {t} ({j + 1} of {len(names)})")
-            res = _lambda_fit(data, t, measurement_error, priors or {}, opts)
+            me = measurement_error
+            if me == "se" and (data.se is None or t not in data.se.columns or data.se[t].isna().all()):
+                me = "none"  # e.g. a predictor measured once per species
+                ts.notes.append(f"{t}: no standard errors in the table, so its lambda model has no "
+                                "measurement error")
+            res = _lambda_fit(data, t, me, priors or {}, opts)
             ts.lambda_draws = np.asarray(res.idata.posterior["lambda"].values, dtype=float)
             ts.diagnostics = res.diagnostics
             ts.notes += [f"{t}: {n}" for n in res.info.get("notes", []) if n not in data.notes]
