@@ -63,3 +63,30 @@ def test_lambda_posterior_recovers_signal_and_its_absence():
     assert t.loc["bm", "K_p_value"] < 0.05
     draws = res["bm"].lambda_draws
     assert draws.shape == (2, 300) and np.all((draws >= 0) & (draws <= 1))
+
+
+def test_lambda_fits_take_the_measurement_error_of_each_trait(demo_data, monkeypatch):
+    # no sampling: the one-trait fit is replaced by a recorder of the settings it gets
+    import types
+
+    import xarray as xr
+
+    import cladewise.evaluation.signal as sig
+
+    seen = {}
+
+    def fake_fit(data, trait, me, priors, opts):
+        seen[trait] = (me, priors)
+        post = xr.Dataset({"lambda": (("chain", "draw"), np.full((2, 5), 0.5))})
+        return types.SimpleNamespace(idata=types.SimpleNamespace(posterior=post), diagnostics=None,
+                                     info={"notes": []})
+
+    monkeypatch.setattr(sig, "_lambda_fit", fake_fit)
+    res = cladewise.signal_traits(demo_data / "vadicola_tree.nwk", _frame(demo_data / "vadicola_species.csv"),
+                                  traits=["head_width_mm", "stream_temp_c"], measurement_error="se",
+                                  priors={"lambda_beta": [2.0, 2.0], "lkj_eta": 2.0}, permutations=0)
+    # stream_temp_c has no standard-error column: its model has none, and the output says so
+    assert seen["head_width_mm"][0] == "se" and seen["stream_temp_c"][0] == "none"
+    assert "no standard errors in the table" in res.to_text()
+    assert res.table.set_index("trait").loc["stream_temp_c", "lambda_mean"] == 0.5
+    assert np.isnan(res.table.loc[0, "K_p_value"])  # no permutations, no p-value
