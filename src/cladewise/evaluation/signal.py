@@ -257,8 +257,9 @@ def trait_signal(
                           seed=None if seed is None else seed + j)
         notes = []
         if kres.dropped:
-            notes.append(f"{t}: {len(kres.dropped)} species without a value were left out of K "
-                         f"(kept in the lambda model, which handles missing values)")
+            n_out = len(kres.dropped)
+            notes.append(f"{t}: {n_out} species without a value {'was' if n_out == 1 else 'were'} left out of K"
+                         + (" (kept in the lambda model, which handles missing values)" if with_lambda else ""))
         ts = TraitSignal(t, kres, notes=notes)
         if with_lambda:
             if progress is not None:
