@@ -6,5 +6,7 @@ __version__ = "0.1.0"
 
 from cladewise.errors import FitError, InputError
 from cladewise.data.trees import FlatTree
+# cheap to import: PyMC and the engine load only when these are called
+from cladewise.direct import fit_traits, prepare_traits, signal_traits
 
-__all__ = ["FlatTree", "InputError", "FitError", "__version__"]
+__all__ = ["FlatTree", "InputError", "FitError", "fit_traits", "prepare_traits", "signal_traits", "__version__"]

@@ -40,9 +40,10 @@ __all__ = [
 
 @dataclass
 class PreparedAnalysis:
-    """Everything a spec asks for, validated, before any sampling."""
+    """Everything a spec asks for, validated, before any sampling (``spec`` is None
+    when the data came from Python objects, :func:`cladewise.direct.prepare_traits`)."""
 
-    spec: Spec
+    spec: Spec | None
     model_data: ModelData
     model_spec: ModelSpec
     options: SamplingOptions
@@ -55,7 +56,9 @@ class PreparedAnalysis:
         return _input_paths(self.spec)
 
 
-def _input_paths(spec: Spec) -> list[Path]:
+def _input_paths(spec: Spec | None) -> list[Path]:
+    if spec is None:
+        return []
     d = spec.data
     return [p for p in (spec.path, d.traits, d.tree, d.trees) if p is not None]
 

@@ -20,7 +20,7 @@ import warnings
 from typing import Sequence
 
 from cladewise import __version__
-from cladewise.cli import check, compare, fit, grid, power, report, simulate
+from cladewise.cli import check, compare, fit, grid, power, report, signal, simulate
 from cladewise.cli.common import Command, command_line
 from cladewise.errors import FitError, InputError
 
@@ -30,6 +30,7 @@ __all__ = ["COMMANDS", "EXIT_INTERRUPTED", "EXIT_BROKEN_PIPE", "main"]
 COMMANDS: tuple[Command, ...] = (
     check.COMMAND,
     fit.COMMAND,
+    signal.COMMAND,
     simulate.COMMAND,
     report.COMMAND,
     compare.COMMAND,

@@ -41,7 +41,6 @@ from cladewise.errors import InputError
 from cladewise.data.matching import MatchResult, match_names
 from cladewise.data.tables import parse_separator
 from cladewise.data.traits import read_traits
-from cladewise.data.treefiles import read_trees
 from cladewise.model.evolution import MODELS, check_model_name
 
 __all__ = [
@@ -275,10 +274,10 @@ def load_spec(path: str | Path) -> Spec:
 
 
 def prepare_data(
-    traits: str | Path,
-    tree: str | Path | None = None,
+    traits: str | Path | Any,
+    tree: str | Path | Any = None,
     *,
-    trees: str | Path | None = None,
+    trees: str | Path | Any = None,
     species: str = "species",
     specimens: bool = False,
     log: tuple[str, ...] | list[str] = (),
@@ -295,20 +294,25 @@ def prepare_data(
 
     The Python counterpart of a spec's ``[data]`` section (same arguments). When
     the ``tree`` file holds several trees the first is used and the summary says
-    so; give the file as ``trees`` to use the whole sample.
+    so; give the file as ``trees`` to use the whole sample. From Python, ``traits``
+    may be a pandas DataFrame and ``tree``/``trees`` a Newick string or read trees
+    (:mod:`cladewise.data.inputs`); they go through the same readers and checks.
     """
+    from cladewise.data.inputs import trees_from
+
     if tree is None and trees is None:
         raise InputError("give a tree file (tree) or a tree sample (trees).")
     warns: list[str] = []
     sample: list = []
+    tree_name, trees_name = tree, trees
     if trees is not None:
-        sample = read_trees(trees)
+        sample, trees_name = trees_from(trees)
     if tree is not None:
-        in_file = read_trees(tree)
+        in_file, tree_name = trees_from(tree)
         ref = in_file[0]
         if len(in_file) > 1:
             warns.append(
-                f"{tree} holds {len(in_file)} trees; the first is used. Give the file as "
+                f"{tree_name} holds {len(in_file)} trees; the first is used. Give the file as "
                 "`trees` to use them all."
             )
     else:
@@ -317,7 +321,7 @@ def prepare_data(
         a, b = set(ref.tip_names), set(sample[0].tip_names)
         only_ref, only_s = sorted(a - b)[:5], sorted(b - a)[:5]
         raise InputError(
-            f"the tree sample {trees} and the tree {tree} do not hold the same tips"
+            f"the tree sample {trees_name} and the tree {tree_name} do not hold the same tips"
             + (f"; only in the tree: {', '.join(only_ref)}" if only_ref else "")
             + (f"; only in the sample: {', '.join(only_s)}" if only_s else "")
             + ". Use a tree and a sample from the same analysis."
@@ -336,9 +340,9 @@ def prepare_data(
     match = match_names(ref, td, drop_unmatched=drop_unmatched, trees=sample, keep_tree_only=keep_tree_only)
     summary = summarise_data(
         match,
-        tree_source=str(tree if tree is not None else f"{trees} (tree 1)"),
+        tree_source=str(tree_name if tree is not None else f"{trees_name} (tree 1)"),
         rtol=ultrametric_rtol,
-        trees_source=str(trees) if trees is not None else None,
+        trees_source=str(trees_name) if trees is not None else None,
         extra_warnings=warns,
     )
     return match, summary

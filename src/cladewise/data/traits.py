@@ -192,7 +192,9 @@ def _did_you_mean(word: str, options: Sequence[str]) -> str:
     return f" Did you mean {', '.join(repr(c) for c in close)}?" if close else ""
 
 
-def _open_table(path: Path, separator: str | None, decimal: str) -> Table:
+def _open_table(path: Path | Table, separator: str | None, decimal: str) -> Table:
+    if isinstance(path, Table):  # already cells (a DataFrame, see cladewise.data.inputs)
+        return path
     if decimal not in (".", ","):
         raise InputError(f"decimal must be \".\" or \",\", not {decimal!r}.")
     table = read_table(path, separator)
@@ -310,7 +312,7 @@ def _check_log_names(log: Sequence[str], numeric: dict, source: str) -> None:
 
 # ------------------------------------------------------------------ the readers
 def read_species_table(
-    path: str | Path,
+    path: str | Path | Table,
     species: str = "species",
     log: Sequence[str] = (),
     se_suffix: str = "_se",
@@ -351,7 +353,6 @@ def read_species_table(
         small to compute with, zero or negative se, negative sd, n below 1, log of
         a non-positive value, a column without values.
     """
-    path = Path(path)
     table = _open_table(path, separator, decimal)
     source = table.source
     sp = _species_column(table, species)
@@ -450,7 +451,7 @@ def read_species_table(
 
 
 def read_specimen_table(
-    path: str | Path,
+    path: str | Path | Table,
     species: str = "species",
     log: Sequence[str] = (),
     separator: str | None = None,
@@ -473,7 +474,6 @@ def read_specimen_table(
         column, cells of number columns that are not plain numbers, infinite or
         out-of-range values, log of a non-positive value, a column without values.
     """
-    path = Path(path)
     table = _open_table(path, separator, decimal)
     source = table.source
     sp = _species_column(table, species)
@@ -526,7 +526,7 @@ def read_specimen_table(
 
 
 def read_traits(
-    path: str | Path,
+    path: str | Path | pd.DataFrame,
     species: str = "species",
     specimens: bool = False,
     log: Sequence[str] = (),
@@ -537,7 +537,17 @@ def read_traits(
     decimal: str = ".",
 ) -> TraitData:
     """Read a species table, or a specimen table when ``specimens`` is True
-    (arguments as in :func:`read_species_table`)."""
+    (arguments as in :func:`read_species_table`). ``path`` may be a pandas DataFrame
+    (species as a column or the index): its cells go through the same reader
+    (:func:`cladewise.data.inputs.table_from_frame`)."""
+    if isinstance(path, pd.DataFrame):
+        from cladewise.data.inputs import frame_messages, table_from_frame
+
+        try:
+            table = table_from_frame(path, species)
+            return read_traits(table, species, specimens, log, se_suffix, n_suffix, sd_suffix, None, ".")
+        except InputError as exc:
+            raise frame_messages(exc) from None
     if specimens:
         return read_specimen_table(path, species=species, log=log, separator=separator, decimal=decimal)
     return read_species_table(

@@ -49,9 +49,12 @@ __all__ = [
 HDI_PROB = 0.95
 
 
-@dataclass
+@dataclass(repr=False)
 class FitResult:
-    """A finished fit: the InferenceData, its summary table and diagnostics."""
+    """A finished fit: the InferenceData, its summary table and diagnostics.
+
+    Printed, it shows :meth:`to_text`; in a notebook, the summary table as HTML.
+    """
 
     idata: az.InferenceData
     summary: pd.DataFrame
@@ -71,6 +74,23 @@ class FitResult:
         """
         check_output_folder(out_dir, overwrite=overwrite, inputs=inputs, what="fit")
         return atomic_write(out_dir, self.write_files, what="fit")
+
+    def report(self, out_dir: str | Path, overwrite: bool = False) -> Path:
+        """Save the fit to the folder ``out_dir`` and write its ``report.html`` there."""
+        from cladewise.report import write_fit_report
+
+        self.save(out_dir, overwrite=overwrite)
+        return write_fit_report(out_dir)
+
+    def __repr__(self) -> str:
+        return self.to_text()
+
+    __str__ = __repr__
+
+    def _repr_html_(self) -> str:
+        from cladewise.report.display import fit_html
+
+        return fit_html(self)
 
     def write_files(self, folder: Path) -> None:
         """Write the fit's files into an existing (staging) folder."""

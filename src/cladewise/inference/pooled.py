@@ -53,7 +53,7 @@ from cladewise.model.build import BuiltModel, ModelData, ModelSpec, tree_data_va
 __all__ = ["TreeSampleFit", "fit_tree_sample", "pool_tree_fits"]
 
 
-@dataclass
+@dataclass(repr=False)  # printed as FitResult.to_text, not field by field
 class TreeSampleFit(FitResult):
     """A fit pooled over trees: a :class:`~cladewise.inference.fit.FitResult` plus per-tree facts.
 
