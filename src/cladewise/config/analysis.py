@@ -53,6 +53,7 @@ __all__ = [
     "MODEL",
     "MODEL_PRIORS",
     "MODEL_FIXED",
+    "MODEL_DISCRETE",
     "SAMPLING",
     "SPEC_SECTIONS",
     "KINDS",
@@ -132,6 +133,12 @@ MODEL_FIXED = Table("model.fixed", {
     "rate_change": Key("float", "early-burst rate change per unit time", example="-1.0"),
 }, help="fixed evolution-model parameters")
 
+#: ``[model.discrete]``: discrete traits (threshold model), each with its states in order
+MODEL_DISCRETE = Table("model.discrete", {}, help="discrete traits and their states in order",
+                       any_key=Key(("list[str]", "list[int]"), "the trait's states in order (2: binary; "
+                                   "3 or more: ordered)", unique=True, sizes=tuple(range(2, 100)),
+                                   example='["diurnal", "nocturnal"]'))
+
 #: ``[model]``: the one declaration of every model key (fields of ModelSpec)
 MODEL = Table("model", {
     "kind": Key("str", "the model", choices=KINDS, example='"correlated"'),
@@ -152,6 +159,8 @@ MODEL = Table("model", {
                   example="{ lkj_eta = 2.0 }"),
     "fixed": Key("table", "an evolution-model parameter held fixed", table=MODEL_FIXED,
                  example="{ lambda = 0.5 }"),
+    "discrete": Key("table", "discrete traits (threshold model): trait = [states in order]; list them in "
+                    "traits too", table=MODEL_DISCRETE, example='{ nocturnal = ["diurnal", "nocturnal"] }'),
 }, help="what to fit")
 
 #: ``[sampling]``: fields of SamplingOptions

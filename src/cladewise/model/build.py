@@ -67,6 +67,7 @@ from cladewise.model.evolution import (
 )
 from cladewise.data.trees import FlatTree
 from cladewise.model.quantities import summary_names
+from cladewise.model.threshold import check_discrete_spec, discrete_terms, prepare_discrete
 from cladewise.model.priors import (
     PARAMETER_NAMES,
     PRIOR_KEYS,
@@ -108,6 +109,8 @@ class ModelData:
         Number of specimens behind each mean.
     sample_var : DataFrame, optional
         Within-species sample variance (NaN where fewer than 2 specimens).
+    text : DataFrame, optional
+        The table's text columns (index = species), e.g. the states of discrete traits.
     specimens : DataFrame, optional
         The specimen rows (column ``species`` and one per trait), which give the
         within-species covariance between traits.
@@ -122,6 +125,7 @@ class ModelData:
     sample_var: pd.DataFrame | None = None
     notes: list[str] = field(default_factory=list)
     specimens: pd.DataFrame | None = None
+    text: pd.DataFrame | None = None
 
     def __post_init__(self) -> None:
         if list(self.values.index) != list(self.tree.tip_names):
@@ -151,6 +155,7 @@ class ModelData:
             sample_var=frame(getattr(td, "within_var", None)),
             notes=list(getattr(match, "notes", []) or []),
             specimens=getattr(td, "specimens", None),
+            text=None if getattr(td, "extra", None) is None else td.extra.set_axis(species, axis=0),
         )
 
 
@@ -169,6 +174,8 @@ class ModelSpec:
     error_correlation: Any = None
     priors: dict[str, Any] = field(default_factory=dict)
     fixed: dict[str, float] = field(default_factory=dict)
+    #: discrete traits (threshold model): trait -> its states in order (model/threshold.py)
+    discrete: dict[str, list[Any]] = field(default_factory=dict)
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "ModelSpec":
@@ -214,6 +221,7 @@ class ModelSpec:
             if not isinstance(value, (int, float)):
                 raise InputError(f"[model.fixed] {key} must be a number")
         _check_error_correlation_spec(self)
+        check_discrete_spec(self)
         bad = sorted(set(self.priors) - set(PRIOR_KEYS))
         if bad:
             raise InputError(
@@ -245,6 +253,7 @@ class BuiltModel:
     notes: list[str] = field(default_factory=list)
     predictors: list[str] = field(default_factory=list)
     design: np.ndarray | None = None  # regression design matrix (N, p)
+    discrete: Any = None  # DiscreteSetup of the threshold model (y holds state codes there)
 
     @property
     def species(self) -> list[str]:
@@ -377,8 +386,14 @@ def build_model(
     if not tbar > 0:
         raise InputError("the tree has zero height: every branch length is 0")
 
+    disc = None
     if spec.kind == "regression":
         y, observed, traits, X, predictors, err_cols = regression_data(data, spec)
+    elif spec.discrete:
+        traits = list(spec.traits)
+        y, observed, disc = prepare_discrete(data, spec, traits)
+        notes += [t.summary_line() for t in disc.traits]
+        X, predictors, err_cols = None, [], traits
     else:
         missing = [t for t in spec.traits if t not in data.values.columns]
         if missing:
@@ -416,6 +431,8 @@ def build_model(
         if spec.kind == "regression":
             ymean, ysd = scale_facts(y[observed[:, 0], 0])
             R, mu, y_t = regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors)
+        elif disc is not None:  # threshold model: liabilities as exactly observed columns
+            R, mu, y_t = discrete_terms(spec, disc, y, observed, traits, t_mean, pri, priors)
         else:
             R, mu = rate_terms(spec, y, observed, traits, t_mean, pri, priors)
             y_t = pm.Data("obs_values", np.where(observed, y, 0.0))
@@ -452,7 +469,7 @@ def build_model(
         engine_inputs={"lengths": lengths, "y": ey, "R": R, "E": e_E, "err_var": e_err, "mu": mu,
                        "log_scale": log_scale},
         tree_data=tree_data, likelihood=likelihood, notes=notes,
-        predictors=predictors, design=X,
+        predictors=predictors, design=X, discrete=disc,
     )
 
 
