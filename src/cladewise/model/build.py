@@ -67,7 +67,7 @@ from cladewise.model.evolution import (
 )
 from cladewise.data.trees import FlatTree
 from cladewise.model.quantities import summary_names
-from cladewise.model.threshold import check_discrete_spec, discrete_terms, prepare_discrete
+from cladewise.model.threshold import check_discrete_spec, discrete_notes, discrete_terms, prepare_discrete
 from cladewise.model.priors import (
     PARAMETER_NAMES,
     PRIOR_KEYS,
@@ -392,7 +392,7 @@ def build_model(
     elif spec.discrete:
         traits = list(spec.traits)
         y, observed, disc = prepare_discrete(data, spec, traits)
-        notes += [t.summary_line() for t in disc.traits]
+        notes += [t.summary_line() for t in disc.traits] + discrete_notes()
         X, predictors, err_cols = None, [], traits
     else:
         missing = [t for t in spec.traits if t not in data.values.columns]

@@ -296,3 +296,16 @@ def _probit_coefficients(R: Any, setup: DiscreteSetup, cont: np.ndarray, traits:
     model.add_coord("liability", setup.names)
     model.add_coord("continuous", [traits[j] for j in cont])
     pm.Deterministic("probit_coef", pt.stack(rows), dims=("liability", "continuous"))
+
+
+def discrete_notes() -> list[str]:
+    """What the threshold model's numbers mean, for the notes of every fit that has one."""
+    from cladewise.evaluation.discrete import LOO_MEANING
+
+    return [
+        "Discrete traits follow the threshold model: an unobserved liability evolves like a continuous trait "
+        "and the state is the interval between thresholds it falls in. Each liability's tip variance is fixed "
+        "at 1 and its first threshold at 0, so slopes involving a liability are per liability tip sd; "
+        "probit_coef gives the liability's regression on the continuous traits per residual liability sd.",
+        LOO_MEANING,
+    ]
