@@ -253,3 +253,21 @@ def test_spec_declaration_and_model_checks():
     with pytest.raises(InputError, match="not a declared state"):
         build_model(data_for(tree, np.arange(4.0), s=["a", "b", "c", "a"]),
                     ModelSpec(traits=["x", "s"], discrete={"s": ["a", "b"]}))
+
+
+def test_spec_file_with_a_text_state_column_builds(tmp_path, rng):
+    # the one path from a spec file: text states in the table, [model] discrete, model
+    # built and its log density finite at the starting point (no sampling)
+    from cladewise.data.treefiles import format_newick
+    from cladewise.pipeline import check_spec
+
+    tree = random_tree(12, rng, ultrametric=True)
+    (tmp_path / "tree.nwk").write_text(format_newick(tree) + "\n")
+    states = ["day", "night"] * 5 + ["", "night"]
+    rows = [f"{n},{v:.4f},{s}" for n, v, s in zip(tree.tip_names, rng.normal(size=12), states)]
+    (tmp_path / "species.csv").write_text("species,head_width,activity\n" + "\n".join(rows) + "\n")
+    (tmp_path / "spec.toml").write_text(
+        '[data]\ntree = "tree.nwk"\ntraits = "species.csv"\n[model]\nkind = "correlated"\n'
+        'traits = ["head_width", "activity"]\ndiscrete = { activity = ["day", "night"] }\n')
+    report = check_spec(tmp_path / "spec.toml")
+    assert any("activity (binary" in p and "5 day, 6 night, 1 without a value" in p for p in report.problems)
