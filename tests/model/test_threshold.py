@@ -271,3 +271,33 @@ def test_spec_file_with_a_text_state_column_builds(tmp_path, rng):
         'traits = ["head_width", "activity"]\ndiscrete = { activity = ["day", "night"] }\n')
     report = check_spec(tmp_path / "spec.toml")
     assert any("activity (binary" in p and "5 day, 6 night, 1 without a value" in p for p in report.problems)
+
+
+def test_loo_term_with_two_binary_traits_uses_the_joint_orthant_probability(rng):
+    # two observed states of one species: P(both intervals | x_i, rest), the bivariate
+    # normal rectangle probability of the dense conditional (scipy multivariate_normal.cdf)
+    tree = random_tree(5, rng, ultrametric=True)
+    x = rng.normal(size=5)
+    a = ["n", "y", "y", "n", "y"]
+    b = ["y", "y", "n", "n", "n"]
+    built = build_model(data_for(tree, x, a=a, b=b),
+                        ModelSpec(traits=["x", "a", "b"], discrete={"a": ["n", "y"], "b": ["n", "y"]}))
+    R = np.array([[1.0, 0.3, -0.2], [0.3, 1.0, 0.4], [-0.2, 0.4, 1.0]])
+    mu = np.array([0.0, 0.1, -0.1])
+    y = np.column_stack([x, np.where(np.array(a) == "y", 0.7, -0.6), np.where(np.array(b) == "y", 0.5, -0.9)])
+    d = {"lengths": tree.length[None], "y": y[None], "R": R[None], "E": np.zeros((1, 3, 3)),
+         "err_var": np.zeros((1, 5, 3)), "mu": mu[None], "log_scale": np.zeros((1, 5))}
+    got = pointwise_loglik_discrete(built, d, np.zeros((1, 2)))[0]
+    full = np.kron(_dense_cov(tree), R)
+    i = 0
+    mine = np.zeros(15, dtype=bool)
+    mine[:3] = True
+    K = full[np.ix_(mine, ~mine)] @ np.linalg.inv(full[np.ix_(~mine, ~mine)])
+    m = mu + K @ (y.ravel()[~mine] - np.tile(mu, 5)[~mine])
+    V = full[np.ix_(mine, mine)] - K @ full[np.ix_(~mine, mine)]
+    m2 = m[1:] + V[1:, 0] / V[0, 0] * (x[i] - m[0])
+    V2 = V[1:, 1:] - np.outer(V[1:, 0], V[0, 1:]) / V[0, 0]
+    # species 0: a = n (L_a < 0), b = y (L_b > 0)
+    p = multivariate_normal(m2, V2).cdf(np.array([0.0, np.inf]), lower_limit=np.array([-np.inf, 0.0]))
+    ref = norm.logpdf(x[i], m[0], np.sqrt(V[0, 0])) + np.log(p)
+    assert np.isclose(got[i], ref, rtol=1e-4)  # the cdf is computed by quasi-Monte Carlo
