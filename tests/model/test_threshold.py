@@ -245,8 +245,10 @@ def test_spec_declaration_and_model_checks():
     assert spec.discrete == {"s": ["no", "yes"]}
     with pytest.raises(InputError, match="not listed in traits"):
         ModelSpec.from_dict({"traits": ["x", "y"], "discrete": {"s": ["no", "yes"]}})
-    with pytest.raises(InputError, match="must hold"):
-        read_table({"traits": ["x", "s"], "discrete": {"s": ["only"]}}, MODEL)
+    with pytest.raises(InputError, match="declares 1 state"):
+        ModelSpec.from_dict(read_table({"traits": ["x", "s"], "discrete": {"s": ["only"]}}, MODEL))
+    with pytest.raises(InputError, match="twice"):
+        read_table({"traits": ["x", "s"], "discrete": {"s": ["a", "a"]}}, MODEL)
     with pytest.raises(InputError, match="species_covariance"):
         ModelSpec.from_dict({"traits": ["x", "s"], "discrete": {"s": ["a", "b"]}, "species_covariance": True})
     tree = star_tree(4)

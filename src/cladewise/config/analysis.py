@@ -136,7 +136,7 @@ MODEL_FIXED = Table("model.fixed", {
 #: ``[model.discrete]``: discrete traits (threshold model), each with its states in order
 MODEL_DISCRETE = Table("model.discrete", {}, help="discrete traits and their states in order",
                        any_key=Key(("list[str]", "list[int]"), "the trait's states in order (2: binary; "
-                                   "3 or more: ordered)", unique=True, sizes=tuple(range(2, 100)),
+                                   "3 or more: ordered)", unique=True,
                                    example='["diurnal", "nocturnal"]'))
 
 #: ``[model]``: the one declaration of every model key (fields of ModelSpec)
