@@ -54,6 +54,7 @@ __all__ = [
     "MODEL_PRIORS",
     "MODEL_FIXED",
     "MODEL_REGIMES",
+    "MODEL_DISCRETE",
     "SAMPLING",
     "SPEC_SECTIONS",
     "KINDS",
@@ -135,6 +136,12 @@ MODEL_FIXED = Table("model.fixed", {
     "rate_change": Key("float", "early-burst rate change per unit time", example="-1.0"),
 }, help="fixed evolution-model parameters")
 
+#: ``[model.discrete]``: discrete traits (threshold model), each with its states in order
+MODEL_DISCRETE = Table("model.discrete", {}, help="discrete traits and their states in order",
+                       any_key=Key(("list[str]", "list[int]"), "the trait's states in order (2: binary; "
+                                   "3 or more: ordered)", unique=True,
+                                   example='["diurnal", "nocturnal"]'))
+
 #: ``[model]``: the one declaration of every model key (fields of ModelSpec)
 #: one clade of ``[model.regimes.clades.<name>]`` (the table name is the regime by default)
 MODEL_REGIME_CLADE = Table("model.regimes.clades.<name>", {
@@ -190,6 +197,8 @@ MODEL = Table("model", {
                  example="{ lambda = 0.5 }"),
     "regimes": Key("table", "evolutionary regimes painted on the tree", table=MODEL_REGIMES,
                    example='{ column = "habitat", rates = "own" }'),
+    "discrete": Key("table", "discrete traits (threshold model): trait = [states in order]; list them in "
+                    "traits too", table=MODEL_DISCRETE, example='{ nocturnal = ["diurnal", "nocturnal"] }'),
 }, help="what to fit")
 
 #: ``[sampling]``: fields of SamplingOptions

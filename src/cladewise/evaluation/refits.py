@@ -51,6 +51,10 @@ def _holdout_model(built: Any) -> Any:
     from cladewise.model.build import build_model
     from cladewise.engine import tree_loglik
 
+    if getattr(built, "discrete", None) is not None:
+        raise InputError("exact leave-one-out refits are not available for models with discrete traits yet "
+                         "(a held-out species' liability would have no likelihood); report the PSIS estimate "
+                         "with its Pareto k")
     data = replace(built.data, notes=list(built.data.notes))
     hb = build_model(data, built.spec, likelihood="tree")
     m = hb.model

@@ -66,6 +66,13 @@ def pointwise_loglik(built: Any, idata: az.InferenceData, engine: EngineDraws | 
     painting = getattr(built, "painting", None)
     regime = None if painting is None else painting.node_regime
     y = d["y"]
+    if getattr(built, "discrete", None) is not None:  # threshold model: states' interval probabilities
+        from cladewise.evaluation.discrete import draw_cuts, pointwise_loglik_discrete
+
+        ll = pointwise_loglik_discrete(built, d, draw_cuts(built, idata))
+        return xr.DataArray(ll.reshape(nc, nd, -1), dims=("chain", "draw", "species"),
+                            coords={"chain": np.arange(nc), "draw": np.arange(nd), "species": list(built.species)},
+                            name=LOGLIK_VAR)
     if y.ndim == 3 and np.allclose(y, y[:1]):
         y = y[0]
     if y.ndim == 3:

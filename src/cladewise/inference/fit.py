@@ -234,6 +234,10 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
             resid = np.where(built.observed, mu + D * (d["y"][s] - mu), 0.0)
             x = x + np.where(built.observed, built.y, 0.0) - resid
         out[a] = x
+    if built.discrete is not None:  # liabilities -> states by the draw's thresholds
+        from cladewise.evaluation.discrete import draw_cuts, states_from_liabilities
+
+        out = states_from_liabilities(built, out, draw_cuts(built, idata)[pick])
     return xr.DataArray(
         out[None], dims=("chain", "draw", "species", "trait"),
         coords={"chain": [0], "draw": pick, "species": built.species, "trait": built.traits},
@@ -330,6 +334,11 @@ def finish_fit(
         _set_group(idata, "posterior_predictive", xr.Dataset({"y_rep": yrep}))
     t_post = time.perf_counter() - t0
     diag = diagnose(idata, built.summary_vars)
+    from cladewise.evaluation.discrete import geometry_advice
+
+    advice = geometry_advice(built, diag.divergences)
+    if advice:
+        diag.problems.append(advice)
     summary = summarise(idata, built)
     info = {
         "description": _describe(built),

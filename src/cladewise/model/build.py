@@ -55,8 +55,8 @@ from cladewise.config.analysis import KINDS, MEASUREMENT_ERROR, MODEL
 from cladewise.config.tables import read_table
 from cladewise.errors import InputError
 from cladewise.model import regimes as rg
-from cladewise.model import within_species as ws
 from cladewise.model.design import regression_data
+from cladewise.model.measurement import check_error_correlation_spec, error_blocks, measurement_error
 from cladewise.model.evolution import (
     MODELS,
     check_model_name,
@@ -68,6 +68,7 @@ from cladewise.model.evolution import (
 )
 from cladewise.data.trees import FlatTree
 from cladewise.model.quantities import summary_names
+from cladewise.model.threshold import check_discrete_spec, discrete_notes, discrete_terms, prepare_discrete
 from cladewise.model.priors import (
     PARAMETER_NAMES,
     PRIOR_KEYS,
@@ -109,6 +110,8 @@ class ModelData:
         Number of specimens behind each mean.
     sample_var : DataFrame, optional
         Within-species sample variance (NaN where fewer than 2 specimens).
+    extra : DataFrame, optional
+        The table's text columns (index = species), e.g. the states of discrete traits.
     specimens : DataFrame, optional
         The specimen rows (column ``species`` and one per trait), which give the
         within-species covariance between traits.
@@ -173,6 +176,8 @@ class ModelSpec:
     priors: dict[str, Any] = field(default_factory=dict)
     fixed: dict[str, float] = field(default_factory=dict)
     regimes: dict[str, Any] = field(default_factory=dict)  # [model.regimes] (model/regimes.py)
+    #: discrete traits (threshold model): trait -> its states in order (model/threshold.py)
+    discrete: dict[str, list[Any]] = field(default_factory=dict)
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "ModelSpec":
@@ -217,9 +222,13 @@ class ModelSpec:
                 )
             if not isinstance(value, (int, float)):
                 raise InputError(f"[model.fixed] {key} must be a number")
-        _check_error_correlation_spec(self)
+        check_error_correlation_spec(self)
         if self.regimes:
             rg.check_regime_spec(self)
+        check_discrete_spec(self)
+        if self.regimes and self.discrete:
+            raise InputError("regimes and discrete traits cannot be combined in one model yet; fit the "
+                             "regime model on the continuous traits, or drop [model.regimes]")
         bad = sorted(set(self.priors) - set(PRIOR_KEYS))
         if bad:
             raise InputError(
@@ -254,6 +263,7 @@ class BuiltModel:
     predictors: list[str] = field(default_factory=list)
     design: np.ndarray | None = None  # regression design matrix (N, p)
     painting: Any = None  # data.regimes.Painting of a regime model; engine R is then (regimes, k, k)
+    discrete: Any = None  # DiscreteSetup of the threshold model (y holds state codes there)
 
     @property
     def species(self) -> list[str]:
@@ -345,7 +355,7 @@ def _likelihood(tree: FlatTree, parent, lengths, y, observed, R, E, err_var, mu,
     else:  # O'Meara et al. 2006: sum over regimes of C_r (x) R_r
         phylo = sum(pt.linalg.kron(pt.dot(Z * (lengths * pt.eq(regime, r))[None, :], Z.T), R[r])
                     for r in range(n_regimes))
-    full = phylo + pt.linalg.kron(pt.eye(n), E) + _error_blocks(err_var, n, k)
+    full = phylo + pt.linalg.kron(pt.eye(n), E) + error_blocks(err_var, n, k)
     idx = np.flatnonzero(observed.ravel())
     cov = full[idx][:, idx]
     mean = pt.flatten(pt.outer(pt.ones(n), mu))[idx]
@@ -398,8 +408,14 @@ def build_model(
     if not tbar > 0:
         raise InputError("the tree has zero height: every branch length is 0")
 
+    disc = None
     if spec.kind == "regression":
         y, observed, traits, X, predictors, err_cols = regression_data(data, spec)
+    elif spec.discrete:
+        traits = list(spec.traits)
+        y, observed, disc = prepare_discrete(data, spec, traits)
+        notes += [t.summary_line() for t in disc.traits] + discrete_notes()
+        X, predictors, err_cols = None, [], traits
     else:
         missing = [t for t in spec.traits if t not in data.values.columns]
         if missing:
@@ -441,6 +457,8 @@ def build_model(
         if spec.kind == "regression":
             ymean, ysd = scale_facts(y[observed[:, 0], 0])
             R, mu, y_t = regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors)
+        elif disc is not None:  # threshold model: liabilities as exactly observed columns
+            R, mu, y_t = discrete_terms(spec, disc, y, observed, traits, t_mean, pri, priors)
         else:
             R, mu = rate_terms(spec, y, observed, traits, t_mean, pri, priors)
             y_t = pm.Data("obs_values", np.where(observed, y, 0.0))
@@ -462,7 +480,7 @@ def build_model(
             E = pt.zeros((k, k))
 
         # --- measurement error
-        err_var = _measurement_error(spec, data, err_cols, observed, priors, notes)
+        err_var = measurement_error(spec, data, err_cols, observed, priors, notes)
 
         # --- exact OU on a non-ultrametric tree: engine inputs of y' = mu + (y - mu) / D
         ey, e_err, e_E, log_scale, e_mu = y_t, err_var, E, pt.zeros(n), mu
@@ -493,103 +511,5 @@ def build_model(
                        "log_scale": log_scale, "node_scale": node_scale, "E_species": E,
                        **({} if tip_mean is None else {"tip_mean": tip_scale[:, None] * tip_mean})},
         tree_data=tree_data, likelihood=likelihood, notes=notes,
-        predictors=predictors, design=X, painting=painting,
+        predictors=predictors, design=X, painting=painting, discrete=disc,
     )
-
-
-def _check_error_correlation_spec(spec: ModelSpec) -> None:
-    if spec.error_correlation is None:
-        return
-    if spec.measurement_error != "se":
-        raise InputError(
-            "[model] error_correlation is only used with measurement_error = 'se' (species means with "
-            "standard errors); with specimen rows the within-species correlation is estimated"
-        )
-    if spec.kind == "regression":
-        raise InputError("[model] error_correlation applies to kind = 'correlated' or 'independent', "
-                         "not to a regression (its response is a single trait)")
-    ws.check_error_correlation(spec.error_correlation, len(spec.traits))
-
-
-def _error_blocks(err_var, n: int, k: int):
-    """blockdiag of the species' error covariances (dense check only)."""
-    if err_var.ndim == 2:
-        return pt.diag(pt.flatten(err_var))
-    # [i, a, j, b] = delta_ij S_i[a, b]
-    return (pt.eye(n)[:, None, :, None] * err_var[:, :, None, :]).reshape((n * k, n * k))
-
-
-def _measurement_error(spec, data, cols, observed, priors, notes):
-    n, k = observed.shape
-    mode = spec.measurement_error
-    if mode == "none":
-        return pt.zeros((n, k))
-    if mode == "se":
-        if data.se is None:
-            raise InputError(
-                "measurement_error = 'se' needs standard errors: add <trait>_se columns (or "
-                "<trait>_n and <trait>_sd), or use per-specimen rows with measurement_error = 'specimens'"
-            )
-        out = np.zeros((n, k))
-        for j, c in enumerate(cols):
-            if c is None or c not in data.se.columns:
-                raise InputError(f"no standard errors for {c!r}")
-            se = data.se[c].to_numpy(dtype=float)
-            have = np.isfinite(se) & observed[:, j]
-            lack = observed[:, j] & ~np.isfinite(se)
-            if not have.any():
-                raise InputError(f"no species has a standard error for {c!r}")
-            if lack.any():
-                fill = float(np.median(se[have]))
-                notes.append(
-                    f"{int(lack.sum())} species had no standard error for {c!r}; the median ({fill:.3g}) was used"
-                )
-                se = np.where(lack, fill, se)
-            out[:, j] = np.where(observed[:, j], se**2, 0.0)
-        rho = ws.error_correlation_matrix(spec.error_correlation, k) if k >= 2 else None
-        if rho is None:
-            priors.append(PriorInfo("measurement error", "known: squared standard errors from the table", "as given"))
-            return pm.Data("obs_err_var", out)
-        priors.append(PriorInfo("measurement error", "known: standard errors from the table, correlated across "
-                                "traits by [model] error_correlation", "as given"))
-        return ws.se_error_covariance(pm.Data("obs_err_var", out), rho)
-    if k >= 2 and data.specimens is not None:
-        # traits measured on the same specimens: full within-species covariance
-        stats = ws.specimen_statistics(data.specimens, data.species, cols)
-        return ws.within_species_error(stats, observed, cols, priors, PriorInfo)
-    if k >= 2:
-        notes.append("no specimen rows were given, only per-trait variances: the errors of the species "
-                     "means are treated as independent across traits")
-    # specimens: partially pooled within-species variances
-    if data.n is None or data.sample_var is None:
-        raise InputError(
-            "measurement_error = 'specimens' needs a per-specimen table: set specimens = true in [data]"
-        )
-    nn = np.zeros((n, k))
-    s2 = np.full((n, k), np.nan)
-    for j, c in enumerate(cols):
-        if c is None or c not in data.n.columns:
-            raise InputError(f"no specimen counts for {c!r}")
-        nn[:, j] = np.nan_to_num(data.n[c].to_numpy(dtype=float))
-        s2[:, j] = data.sample_var[c].to_numpy(dtype=float)
-    # a zero sample variance (a value repeated for every specimen) carries no information
-    has_var = (nn >= 2) & np.isfinite(s2) & (np.nan_to_num(s2) > 0) & observed
-    centre = np.array([
-        np.log(np.median(s2[has_var[:, j], j])) if has_var[:, j].any() else 0.0 for j in range(k)
-    ])
-    for j, c in enumerate(cols):
-        if not has_var[:, j].any():
-            raise InputError(f"no species has two or more specimens of {c!r}: within-species variance cannot be estimated")
-    log_mean = pm.Normal("within_log_var_mean", mu=centre, sigma=2.0, dims="trait")
-    log_sd = pm.HalfNormal("within_log_var_sd", sigma=1.0, dims="trait")
-    z = pm.Normal("within_z", 0.0, 1.0, dims=("species", "trait"))
-    var_w = pt.exp(log_mean[None, :] + log_sd[None, :] * z)
-    pm.Deterministic("within_sd", pt.sqrt(pt.exp(log_mean)), dims="trait")
-    idx = np.nonzero(has_var)
-    dof = nn[idx] - 1.0
-    # (n-1) s^2 / sigma^2 ~ chi^2(n-1)  <=>  s^2 ~ Gamma((n-1)/2, rate=(n-1)/(2 sigma^2))
-    pm.Gamma("within_sample_var", alpha=dof / 2.0, beta=dof / (2.0 * var_w[idx]), observed=s2[idx])
-    priors.append(PriorInfo("within-species log variance", "Normal(log median s^2, 2) mean, HalfNormal(1) spread",
-                            "partial pooling across species; species with one specimen borrow strength"))
-    nsafe = np.where(observed & (nn > 0), nn, 1.0)
-    return pt.where(observed, var_w / nsafe, 0.0)

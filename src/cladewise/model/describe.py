@@ -74,4 +74,7 @@ def describe_model(spec: Any, full_within: bool = False) -> str:
         head = f"independent evolution of {', '.join(spec.traits)} under {evo} (no evolutionary correlation)"
     if spec.species_covariance:
         head += ", plus species-level covariance"
+    disc = getattr(spec, "discrete", None) or {}
+    if disc:
+        head += f"; {', '.join(disc)} discrete (threshold model: liabilities with tip variance 1)"
     return f"{head}; {me}"

@@ -81,6 +81,10 @@ class Quantity:
 QUANTITIES: tuple[Quantity, ...] = (
     Quantity("evo_corr", "evolutionary correlation", signed=True, labels="pair", role="effect", headline=True),
     Quantity("evo_slope", "evolutionary slope", signed=True, labels="ordered_pair", role="effect", headline=True),
+    Quantity("probit_coef", "liability regression coefficient (probit scale: per residual liability sd)",
+             signed=True, role="effect", headline=True),
+    Quantity("threshold", "threshold between ordered states (liability tip sds; the first is 0)",
+             role="location"),
     Quantity("evo_rate", "evolutionary rate (variance per unit branch length)", role="rate"),
     Quantity("evo_sd", "evolutionary standard deviation", role="rate", summary=False),
     Quantity("coef", "regression coefficient", signed=True, role="effect", headline=True),
