@@ -60,8 +60,9 @@ def _input_paths(spec: Spec) -> list[Path]:
     return [p for p in (spec.path, d.traits, d.tree, d.trees) if p is not None]
 
 
-def _read_spec(spec_path: str | Path, trees: str | Path | None) -> Spec:
-    spec = load_spec(spec_path)
+def _read_spec(spec_path: str | Path | Spec, trees: str | Path | None) -> Spec:
+    # a Spec already read (a cluster worker gets one with its own copies of the files)
+    spec = spec_path if isinstance(spec_path, Spec) else load_spec(spec_path)
     if trees is not None:
         p = Path(trees).expanduser().resolve()
         if not p.is_file():
@@ -146,7 +147,7 @@ def _sample_trees(prep: PreparedAnalysis) -> list:
 
 
 def fit_from_spec(
-    spec_path: str | Path,
+    spec_path: str | Path | Spec,
     *,
     out: str | Path | None = None,
     overwrite: bool = False,
@@ -162,8 +163,9 @@ def fit_from_spec(
 
     Parameters
     ----------
-    spec_path : path
-        Analysis spec (TOML) with ``[data]``, ``[model]`` and ``[sampling]``.
+    spec_path : path or Spec
+        Analysis spec (TOML) with ``[data]``, ``[model]`` and ``[sampling]``, or
+        one already read by :func:`~cladewise.config.analysis.load_spec`.
     out : path, optional
         Fit folder to write; checked before any compiling or sampling
         (:func:`~cladewise.inference.results.check_output_folder`).
