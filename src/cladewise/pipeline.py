@@ -157,6 +157,7 @@ def fit_from_spec(
     keep_partial: bool = False,
     progress: bool | None = True,
     command: str | None = None,
+    models: Any = None,
     **sampling_overrides: Any,
 ) -> FitResult:
     """Fit the model a spec describes, on its tree or over a tree sample, and save it.
@@ -184,6 +185,10 @@ def fit_from_spec(
         Progress bar and per-tree lines (``None``: only on a terminal).
     command : str, optional
         The command line that started the run, recorded in summary.json.
+    models : callable, optional
+        ``models(prepared) -> (built, compiled)`` for a single-tree fit: a store of
+        built and compiled models to reuse (a cluster worker keeps one per model and
+        data, :mod:`cladewise.studies.remote_fit`); default: build and compile here.
     **sampling_overrides
         Replace ``[sampling]`` values (``None`` is ignored), e.g. ``draws=500``.
 
@@ -215,7 +220,9 @@ def fit_from_spec(
                                      n_trees=n_trees, seed=tree_seed, progress=progress,
                                      keep_partial=keep_partial)
         else:
-            result = fit(prep.model_data, prep.model_spec, prep.options, keep_partial=keep_partial)
+            built, compiled = models(prep) if models is not None else (None, None)
+            result = fit(prep.model_data, prep.model_spec, prep.options, keep_partial=keep_partial,
+                         built=built, compiled=compiled)
     except FitInterrupted as exc:
         part = exc.partial
         if not (keep_partial and target is not None and part is not None):

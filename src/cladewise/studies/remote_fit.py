@@ -26,7 +26,7 @@ from cladewise.config.analysis import load_spec
 from cladewise.config.grid import GridJob
 from cladewise.inference.results import MARKER, atomic_write
 
-__all__ = ["pack_job", "run_packed_job", "write_fit_folder", "ROW_COLUMNS"]
+__all__ = ["pack_job", "run_packed_job", "write_fit_folder", "worker_models", "ROW_COLUMNS"]
 
 #: columns of the grid's status table (one row per fit)
 ROW_COLUMNS = ["name", "status", "seconds", "n_trees", "max_rhat", "diagnostics_ok", "message"]
@@ -99,6 +99,27 @@ def _home_paths(obj: Any, back: dict[str, str]) -> Any:
     return obj
 
 
+def worker_models(prep: Any) -> tuple[Any, Any]:
+    """(built, compiled) for a prepared single-tree analysis, made once per worker process.
+
+    Keyed by the matched data, the model and the sampler, so fits that differ only in
+    seed or sampler settings (chains, draws) share one compiled model; other data of
+    the same structure still load from the on-disk compile cache.
+    """
+    from cladewise.inference.sampling import compile_model
+    from cladewise.inference.startcheck import check_starting_point
+    from cladewise.model.build import build_model
+    from cladewise.studies.cluster import memo_key, worker_memo
+
+    def make() -> tuple[Any, Any]:
+        built = build_model(prep.model_data, prep.model_spec)
+        check_starting_point(built)
+        return built, compile_model(built, prep.options.sampler)
+
+    key = memo_key("single-fit", prep.model_data, prep.model_spec, prep.options.sampler)
+    return worker_memo(key, make)
+
+
 def run_packed_job(payload: dict[str, Any], tag: Any = None) -> dict[str, Any]:
     """Fit one packed grid job in a private temporary folder; never raises.
 
@@ -120,7 +141,8 @@ def run_packed_job(payload: dict[str, Any], tag: Any = None) -> dict[str, Any]:
             (root / "in").mkdir()
             spec, trees, back = _unpack(payload, root / "in")
             res = fit_from_spec(spec, trees=trees, n_trees=payload["n_trees"], progress=False,
-                                command=f"cladewise grid (fit {name})", **payload["sampling"])
+                                command=f"cladewise grid (fit {name})", models=worker_models,
+                                **payload["sampling"])
             res.info = _home_paths(res.info, back)
             folder = res.save(root / "fit")
             row["files"] = {str(f.relative_to(folder)): f.read_bytes()
