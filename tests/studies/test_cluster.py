@@ -236,3 +236,17 @@ def test_power_study_on_cluster_equals_one_process(external_cluster):
     many = run_power_study(tree, scheduler=external_cluster["address"], **kw)
     pd.testing.assert_frame_equal(one.fits, many.fits)
     pd.testing.assert_frame_equal(one.table, many.table)
+
+
+@pytest.mark.slow
+def test_calibration_on_cluster_equals_one_process(external_cluster):
+    from cladewise.inference.sampling import SamplingOptions
+    from cladewise.studies.calibration import run_calibration
+
+    tree = random_tree(8, np.random.default_rng(4), True)
+    opts = SamplingOptions(sampler="pymc", chains=1, draws=60, tune=60, progress=False)
+    kw = dict(n_datasets=3, n_rank_draws=19, n_bins=10, options=opts, seed=12)
+    one = run_calibration(tree, **kw)
+    many = run_calibration(tree, scheduler=external_cluster["address"], **kw)
+    pd.testing.assert_frame_equal(one.ranks, many.ranks)
+    pd.testing.assert_frame_equal(one.coverage, many.coverage)
