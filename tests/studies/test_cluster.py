@@ -189,7 +189,10 @@ def test_worker_killed_mid_fit_grid_completes_once(external_cluster, tmp_path):
     th.start()
     pid = _worker_pid_running_a_fit(external_cluster["address"])
     os.kill(pid, signal.SIGKILL)  # the worker dies in the middle of a fit; its nanny starts a new one
+    assert th.is_alive(), "the grid must still be running when the worker is killed"
     th.join(timeout=600)
+    with pytest.raises(ProcessLookupError):
+        os.kill(pid, 0)  # that worker is really gone
     assert not th.is_alive() and "error" not in box, box.get("error")
     table = box["table"]
     assert list(table["name"]) == names and set(table["status"]) == {"done"}, table.to_string()
