@@ -115,6 +115,29 @@ def _same_posteriors(a: dict[str, np.ndarray], b: dict[str, np.ndarray]) -> None
         np.testing.assert_array_equal(a[k], b[k], err_msg=k)
 
 
+# ------------------------------------------------------------------ per-worker model store
+def test_worker_models_built_once_per_model_and_data(tmp_path):
+    from cladewise.pipeline import prepare_analysis
+    from cladewise.studies.cluster import memo_stats
+    from cladewise.studies.remote_fit import worker_models
+
+    proj = tmp_path / "project"
+    _write_project(proj)
+    before = memo_stats()
+    a = worker_models(prepare_analysis(proj / "corr.toml", seed=1))
+    b = worker_models(prepare_analysis(proj / "corr.toml", seed=7, draws=30))  # other seed and draws: same model
+    c = worker_models(prepare_analysis(proj / "indep.toml"))  # another model
+    after = memo_stats()
+    assert a[0] is b[0] and c[0] is not a[0]
+    assert after["misses"] - before["misses"] == 2 and after["hits"] - before["hits"] == 1
+    # a changed data file is another model, never the stored one
+    table = pd.read_csv(proj / "species.csv")
+    table.loc[0, "a"] += 0.5
+    table.to_csv(proj / "species.csv", index=False)
+    d = worker_models(prepare_analysis(proj / "corr.toml", seed=1))
+    assert d[0] is not a[0]
+
+
 # ------------------------------------------------------------------ grid, end to end
 def test_grid_on_external_cluster_equals_one_process(external_cluster, tmp_path):
     from cladewise.pipeline import fit_from_spec
