@@ -43,7 +43,7 @@ import pandas as pd
 
 from cladewise.config.grid import GridJob, load_grid
 from cladewise.studies.cluster import TaskCounts, connect, run_tasks
-from cladewise.studies.remote_fit import ROW_COLUMNS, pack_job, run_packed_job, write_fit_folder
+from cladewise.studies.remote_fit import ROW_COLUMNS, empty_row, pack_job, run_packed_job, write_fit_folder
 from cladewise.errors import InputError
 from cladewise.inference.results import atomic_write, check_output_folder, is_cladewise_output, write_marker
 
@@ -161,7 +161,7 @@ def run_grid(
         todo = []
         for j in jobs:
             if is_finished(out / j.name):
-                rows[j.name] = {**_empty_row(j.name), "status": "skipped", "seconds": 0.0,
+                rows[j.name] = {**empty_row(j.name), "status": "skipped", "seconds": 0.0,
                                 "message": "already finished (delete the folder to refit)"}
                 counts.states[j.name] = "skipped"
             else:
@@ -184,11 +184,6 @@ def run_grid(
         lock.unlink(missing_ok=True)
 
 
-def _empty_row(name: str) -> dict[str, Any]:
-    return {"name": name, "status": "failed", "seconds": float("nan"), "n_trees": None,
-            "max_rhat": float("nan"), "diagnostics_ok": None, "message": ""}
-
-
 def _write_json(out: Path, counts: TaskCounts, state: str, scheduler: str | None) -> None:
     doc = {"state": state, **counts.as_dict(), "scheduler": scheduler or "local",
            "pid": os.getpid(), "updated": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
@@ -204,7 +199,7 @@ def _run_on_dask(todo: list[GridJob], out: Path, scheduler: str | None, n_worker
         try:
             tasks.append((j.name, (pack_job(j),)))
         except (InputError, OSError) as exc:  # an unreadable spec or data file fails this fit only
-            results.append({**_empty_row(j.name), "message": f"{type(exc).__name__}: {exc}"[:500]})
+            results.append({**empty_row(j.name), "message": f"{type(exc).__name__}: {exc}"[:500]})
             counts.states[j.name] = "failed"
             say(f"{j.name}: failed: {results[-1]['message']}")
     last = [0.0]
@@ -227,7 +222,7 @@ def _run_on_dask(todo: list[GridJob], out: Path, scheduler: str | None, n_worker
                                       state_of=lambda r: r["status"]):
             k += 1
             if err is not None:  # the worker died more often than dask allows, or the task could not run
-                r = {**_empty_row(name), "message": f"{type(err).__name__}: {err}"[:500]}
+                r = {**empty_row(name), "message": f"{type(err).__name__}: {err}"[:500]}
             files = r.pop("files", None) or {}
             if r["status"] == "done":
                 try:

@@ -26,13 +26,14 @@ from cladewise.config.analysis import load_spec
 from cladewise.config.grid import GridJob
 from cladewise.inference.results import MARKER, atomic_write
 
-__all__ = ["pack_job", "run_packed_job", "write_fit_folder", "worker_models", "ROW_COLUMNS"]
+__all__ = ["pack_job", "run_packed_job", "write_fit_folder", "worker_models", "empty_row", "ROW_COLUMNS"]
 
 #: columns of the grid's status table (one row per fit)
 ROW_COLUMNS = ["name", "status", "seconds", "n_trees", "max_rhat", "diagnostics_ok", "message"]
 
 
-def _row(name: str) -> dict[str, Any]:
+def empty_row(name: str) -> dict[str, Any]:
+    """A status row of a fit that has not succeeded (yet)."""
     return {"name": name, "status": "failed", "seconds": float("nan"), "n_trees": None,
             "max_rhat": float("nan"), "diagnostics_ok": None, "message": ""}
 
@@ -131,7 +132,7 @@ def run_packed_job(payload: dict[str, Any], tag: Any = None) -> dict[str, Any]:
     name = payload["name"]
     report_start(tag)
     t0 = time.perf_counter()
-    row = _row(name)
+    row = empty_row(name)
     row["files"] = {}
     try:
         from cladewise.pipeline import fit_from_spec
