@@ -112,20 +112,27 @@ def test_uses_tree_sample_takes_plain_values(tmp_path):
 
 
 def test_grid_runs_through_the_pipeline(tmp_path, monkeypatch):
-    from cladewise.studies.grid import GridJob, run_job
+    from cladewise.config.grid import GridJob
+    from cladewise.studies.remote_fit import pack_job, run_packed_job
 
+    _write_data(tmp_path / "data")
+    spec = _spec(tmp_path, trees=True)
     seen = {}
 
     def record(spec, **kw):
-        seen.update(kw, spec=spec)
+        # the worker's own copies of the files, with the client's content
+        seen.update(kw, spec=spec, traits=spec.data.traits.read_bytes(), trees_text=kw["trees"].read_text(),
+                    spec_text=spec.path.read_text())
         raise InputError("recorded")
 
     monkeypatch.setattr(pipeline, "fit_from_spec", record)
-    job = GridJob("g1", str(tmp_path / "s.toml"), trees=str(tmp_path / "t.nwk"), n_trees=2, sampling={"draws": 50})
-    row = run_job(job.__dict__, str(tmp_path / "out"))
-    assert row["status"] == "failed" and "recorded" in row["message"]
-    assert seen["out"] == tmp_path / "out" / "g1" and seen["trees"] == str(tmp_path / "t.nwk")
-    assert seen["n_trees"] == 2 and seen["draws"] == 50 and seen["overwrite"] is True
+    job = GridJob("g1", str(spec), trees=str(tmp_path / "data" / "trees.nwk"), n_trees=2, sampling={"draws": 50})
+    row = run_packed_job(pack_job(job))
+    assert row["status"] == "failed" and "recorded" in row["message"] and row["files"] == {}
+    assert seen["traits"] == (tmp_path / "data" / "traits.csv").read_bytes()
+    assert seen["trees_text"] == (tmp_path / "data" / "trees.nwk").read_text()
+    assert seen["spec"].path != spec and seen["spec_text"] == spec.read_text()
+    assert seen["n_trees"] == 2 and seen["draws"] == 50
 
 
 def test_output_folder_is_checked_before_any_work(tmp_path, spy):

@@ -63,8 +63,9 @@ def _input_paths(spec: Spec | None) -> list[Path]:
     return [p for p in (spec.path, d.traits, d.tree, d.trees) if p is not None]
 
 
-def _read_spec(spec_path: str | Path, trees: str | Path | None) -> Spec:
-    spec = load_spec(spec_path)
+def _read_spec(spec_path: str | Path | Spec, trees: str | Path | None) -> Spec:
+    # a Spec already read (a cluster worker gets one with its own copies of the files)
+    spec = spec_path if isinstance(spec_path, Spec) else load_spec(spec_path)
     if trees is not None:
         p = Path(trees).expanduser().resolve()
         if not p.is_file():
@@ -153,7 +154,7 @@ def _sample_trees(prep: PreparedAnalysis) -> list:
 
 
 def fit_from_spec(
-    spec_path: str | Path,
+    spec_path: str | Path | Spec,
     *,
     out: str | Path | None = None,
     overwrite: bool = False,
@@ -164,14 +165,16 @@ def fit_from_spec(
     progress: bool | None = True,
     command: str | None = None,
     ancestral: bool | None = None,
+    models: Any = None,
     **sampling_overrides: Any,
 ) -> FitResult:
     """Fit the model a spec describes, on its tree or over a tree sample, and save it.
 
     Parameters
     ----------
-    spec_path : path
-        Analysis spec (TOML) with ``[data]``, ``[model]`` and ``[sampling]``.
+    spec_path : path or Spec
+        Analysis spec (TOML) with ``[data]``, ``[model]`` and ``[sampling]``, or
+        one already read by :func:`~cladewise.config.analysis.load_spec`.
     out : path, optional
         Fit folder to write; checked before any compiling or sampling
         (:func:`~cladewise.inference.results.check_output_folder`).
@@ -194,6 +197,10 @@ def fit_from_spec(
         Add ancestral values and predictions of missing cells
         (:mod:`cladewise.inference.ancestral`); default: up to
         :data:`~cladewise.inference.ancestral.MAX_TIPS` species.
+    models : callable, optional
+        ``models(prepared) -> (built, compiled)`` for a single-tree fit: a store of
+        built and compiled models to reuse (a cluster worker keeps one per model and
+        data, :mod:`cladewise.studies.remote_fit`); default: build and compile here.
     **sampling_overrides
         Replace ``[sampling]`` values (``None`` is ignored), e.g. ``draws=500``.
 
@@ -225,7 +232,9 @@ def fit_from_spec(
                                      n_trees=n_trees, seed=tree_seed, progress=progress,
                                      keep_partial=keep_partial)
         else:
-            result = fit(prep.model_data, prep.model_spec, prep.options, keep_partial=keep_partial)
+            built, compiled = models(prep) if models is not None else (None, None)
+            result = fit(prep.model_data, prep.model_spec, prep.options, keep_partial=keep_partial,
+                         built=built, compiled=compiled)
     except FitInterrupted as exc:
         part = exc.partial
         if not (keep_partial and target is not None and part is not None):

@@ -1,4 +1,11 @@
-"""``cladewise grid GRID.toml --out DIR``: many fits through dask."""
+"""``cladewise grid GRID.toml --out DIR``: many fits through dask.
+
+``--scheduler ADDRESS`` sends the fits to a dask scheduler started on its own
+(``dask scheduler`` / ``dask worker``, e.g. on a batch system); ADDRESS is
+``tcp://host:port`` or the scheduler file written by ``dask scheduler
+--scheduler-file``. Progress: one line per finished fit here, and
+``DIR/grid_status.json`` for a grid run in the background.
+"""
 
 from __future__ import annotations
 
@@ -14,7 +21,9 @@ def _arguments(p: argparse.ArgumentParser) -> None:
                                 "format in the docstring of cladewise.studies.grid")
     p.add_argument("--out", required=True, help="folder for one sub-folder per fit (finished fits are skipped)")
     p.add_argument("--scheduler", metavar="ADDRESS",
-                   help="address of a running dask scheduler (default: a local cluster on this machine)")
+                   help="address (tcp://host:port) or scheduler file of a running dask scheduler whose workers "
+                        "have cladewise installed; they need not see your files (default: a local cluster "
+                        "on this machine)")
     p.add_argument("--workers", type=int, default=2, metavar="N",
                    help="worker processes of the local cluster (default 2)")
 

@@ -34,6 +34,11 @@ def _arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--overwrite", action="store_true", help="replace files in an existing non-empty folder")
     p.add_argument("--n-datasets", type=int, help="override [power] n_datasets")
     p.add_argument("--seed", type=int, help="override [power] seed")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run one fit per data set on this dask scheduler (tcp://host:port or scheduler file); "
+                        "same numbers as without it")
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="run the fits on a local dask cluster of N processes (default: in this process)")
 
 
 def _run(args: argparse.Namespace) -> int:
@@ -54,7 +59,10 @@ def _run(args: argparse.Namespace) -> int:
     def say(msg: str) -> None:
         print(msg, file=sys.stderr, flush=True)
 
-    result = run_power_study(spec.tree, options=spec.options, progress=say, **spec.kwargs)
+    if args.workers is not None and args.workers < 1:
+        raise InputError("--workers must be at least 1")
+    result = run_power_study(spec.tree, options=spec.options, progress=say, scheduler=args.scheduler,
+                             n_workers=args.workers, **spec.kwargs)
     result.settings.update({
         "spec_path": str(spec.path), "spec_text": spec.text,
         "command": args.command_line,

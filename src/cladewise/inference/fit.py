@@ -379,6 +379,7 @@ def fit(
     predictive_draws: int = 200,
     *,
     built: BuiltModel | None = None,
+    compiled: Any = None,
     keep_partial: bool = False,
 ) -> FitResult:
     """Build a model, check its starting point, sample it and return the :class:`FitResult`.
@@ -398,6 +399,9 @@ def fit(
     built : BuiltModel, optional
         The model already built from ``data`` and ``spec`` (skips building and
         the starting-point check).
+    compiled : optional
+        ``built`` already compiled (:func:`~cladewise.inference.sampling.compile_model`),
+        to fit it again without compiling (nutpie only).
     keep_partial : bool
         On Ctrl-C, finish the draws made so far into a fit marked partial and
         attach it to the exception (``partial``); otherwise ``partial`` is None.
@@ -418,7 +422,7 @@ def fit(
         check_starting_point(built)
     t1 = time.perf_counter()
     try:
-        idata = sample(built, opts)
+        idata = sample(built, opts, compiled=compiled)
     except FitInterrupted as exc:
         part = None
         if keep_partial and exc.partial is not None:

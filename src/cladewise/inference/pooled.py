@@ -50,7 +50,7 @@ from cladewise.inference.treesample import (
 )
 from cladewise.model.build import BuiltModel, ModelData, ModelSpec, tree_data_values
 
-__all__ = ["TreeSampleFit", "fit_tree_sample", "pool_tree_fits"]
+__all__ = ["TreeSampleFit", "fit_tree_sample", "pool_tree_fits", "fit_one_tree"]
 
 
 @dataclass(repr=False)  # printed as FitResult.to_text, not field by field
@@ -243,21 +243,9 @@ def fit_tree_sample(
 
     try:
         for a, (i, tree) in enumerate(zip(chosen, padded_all)):
-            values = tree_data_values(built, tree)
             s = base + int(i)
             o = dataclasses.replace(opts, seed=s, progress=False if not show else opts.progress)
-            ts = time.perf_counter()
-            idata = sampling.sample(built, o, compiled=compiled, tree_values=_filter_values(values, compiled))
-            ts = time.perf_counter() - ts
-            tp = time.perf_counter()
-            # the per-draw log-likelihood and replicates must use this draw's own tree
-            _set_tree_data(built, values)
-            bt = dataclasses.replace(built, data=dataclasses.replace(built.data, tree=tree, notes=list(built.data.notes)))
-            if built.painting is not None:  # regimes repainted on this tree (tree_data_values)
-                bt.painting = dataclasses.replace(built.painting,
-                                                  node_regime=values[built.tree_data["regime"]])
-            res = finish_fit(bt, idata, o, timing={"sample": ts}, predictive_draws=per_tree_pp, engine=engine)
-            tp = time.perf_counter() - tp
+            res, ts, tp = fit_one_tree(built, compiled, engine, tree, o, per_tree_pp)
             fits.append(res)
             seeds.append(s)
             t_sample.append(ts)
@@ -271,6 +259,27 @@ def fit_tree_sample(
     finally:
         _set_tree_data(built, own_values)
     return pooled_so_far(False)
+
+
+def fit_one_tree(built: BuiltModel, compiled: Any, engine: EngineDraws, tree: FlatTree,
+                 options: SamplingOptions, predictive_draws: int) -> tuple[FitResult, float, float]:
+    """Sample one (padded) tree of a sample with the shared compiled model; finish its fit.
+
+    ``options.seed`` is this tree's seed. Returns the fit and the seconds spent
+    sampling and post-processing. Leaves the tree's data set in ``built``.
+    """
+    values = tree_data_values(built, tree)
+    ts = time.perf_counter()
+    idata = sampling.sample(built, options, compiled=compiled, tree_values=_filter_values(values, compiled))
+    ts = time.perf_counter() - ts
+    tp = time.perf_counter()
+    # the per-draw log-likelihood and replicates must use this draw's own tree
+    _set_tree_data(built, values)
+    bt = dataclasses.replace(built, data=dataclasses.replace(built.data, tree=tree, notes=list(built.data.notes)))
+    if built.painting is not None:  # regimes repainted on this tree (tree_data_values)
+        bt.painting = dataclasses.replace(built.painting, node_regime=values[built.tree_data["regime"]])
+    res = finish_fit(bt, idata, options, timing={"sample": ts}, predictive_draws=predictive_draws, engine=engine)
+    return res, ts, time.perf_counter() - tp
 
 
 def _set_tree_data(built: BuiltModel, values: dict[str, np.ndarray]) -> None:

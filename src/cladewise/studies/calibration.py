@@ -217,6 +217,8 @@ def run_calibration(
     options: Any = None,
     seed: int = 1,
     progress: Progress = None,
+    scheduler: str | None = None,
+    n_workers: int | None = None,
 ) -> CalibrationResult:
     """Simulation-based calibration of one model setting.
 
@@ -259,6 +261,13 @@ def run_calibration(
         Default: nutpie, 2 chains, 500 draws, 500 tuning steps.
     seed : int
     progress : callable, optional
+    scheduler : str, optional
+        Run one task per data set on the dask scheduler at this address (or
+        scheduler file); truths, data sets and seeds are drawn here first, so the
+        result equals the one-process run (:mod:`cladewise.studies.cluster`).
+    n_workers : int, optional
+        Without ``scheduler``: a local dask cluster of this many processes
+        (default: everything in this process).
 
     Returns
     -------
@@ -307,7 +316,9 @@ def run_calibration(
     rebuild = model == "specimens"
     # the specimens model is compiled per data set; its reference gives only the prior
     say(progress, "building the reference model ..." if rebuild else "compiling the model (once) ...")
-    study = compile_study(ref, spec, options, compile=not rebuild)
+    local = scheduler is None and n_workers is None
+    # on a cluster the fits are compiled on the workers; here the model only draws the truths
+    study = compile_study(ref, spec, options, compile=not rebuild and local)
     say(progress, f"ready in {time.perf_counter() - t0:.0f} s")
     checked = CALIBRATED[model] + (("lambda",) if evolution == "lambda" else ())
 
@@ -323,23 +334,30 @@ def run_calibration(
                     random_seed=gen)
     keys = ["lengths", "R", "mu"] + names
     fit_seeds = gen.integers(1, 2**31 - 1, size=int(n_datasets))
-    rows, divergences = [], 0
-    t1 = time.perf_counter()
+    # every data set and seed is drawn here, before any fit: a cluster gives the same numbers
+    work = []
     for d in range(int(n_datasets)):
         truth = {key: np.asarray(v[d]) for key, v in zip(keys, drawn)}
-        idata = study.fit(_simulate(model, study, truth, se_arr, counts, gen), int(fit_seeds[d]))
-        n_div = fit_problems(idata)[0]
-        divergences += n_div
-        true_el: dict[str, np.ndarray] = {}
-        for name in checked:
-            da = idata.posterior[name]
-            true_el.update(_labelled(name, truth[name], [list(da.coords[c].values) for c in da.dims[2:]], 0))
-        for name, draws in _named_draws(idata.posterior, checked).items():
-            rows.append({"dataset": d + 1, "parameter": name, "divergences": n_div,
-                         "divergent_share": n_div / study.draws_per_fit,
-                         **rank_of_truth(float(true_el[name]), draws, n_rank_draws, intervals)})
-        if progress is not None and ((d + 1) % 10 == 0 or d + 1 == n_datasets):
-            say(progress, f"{d + 1}/{n_datasets} fits ({(time.perf_counter() - t1) / (d + 1):.1f} s per fit)")
+        work.append((d, {n: truth[n] for n in checked}, _simulate(model, study, truth, se_arr, counts, gen),
+                     int(fit_seeds[d])))
+    t1 = time.perf_counter()
+    if local:
+        results = []
+        for d, truth, data, s in work:
+            results.append(calibration_rows(study, d, truth, data, s, checked, n_rank_draws, intervals))
+            if progress is not None and ((d + 1) % 10 == 0 or d + 1 == n_datasets):
+                say(progress, f"{d + 1}/{n_datasets} fits ({(time.perf_counter() - t1) / (d + 1):.1f} s per fit)")
+    else:
+        from cladewise.studies.cluster import map_study, memo_key
+
+        setup = (ref, spec, options, not rebuild)
+        key = memo_key("calibration", *setup)
+        results = map_study(_calibration_task, [(key, setup, d, truth, data, s, checked, n_rank_draws, intervals)
+                                                for d, truth, data, s in work],
+                            scheduler=scheduler, n_workers=n_workers or 2, progress=progress,
+                            what="calibration fits")
+    rows = [r for res in results for r in res[0]]
+    divergences = sum(res[1] for res in results)
     ranks = pd.DataFrame(rows)
     coverage, uniformity = summarise_ranks(ranks, n_rank_draws, n_bins, intervals)
     settings = {
@@ -355,6 +373,35 @@ def run_calibration(
         "seconds": round(time.perf_counter() - t0, 1),
     }
     return CalibrationResult(ranks, coverage, uniformity, settings)
+
+
+def calibration_rows(study: Any, d: int, truth: dict[str, np.ndarray], data: Any, seed: int,
+                     checked: Sequence[str], n_rank_draws: int,
+                     intervals: Sequence[float]) -> tuple[list[dict[str, Any]], int]:
+    """Fit data set ``d`` and rank its true values: (rows of ``ranks``, divergences)."""
+    idata = study.fit(data, seed)
+    n_div = fit_problems(idata)[0]
+    true_el: dict[str, np.ndarray] = {}
+    for name in checked:
+        da = idata.posterior[name]
+        true_el.update(_labelled(name, truth[name], [list(da.coords[c].values) for c in da.dims[2:]], 0))
+    rows = [{"dataset": d + 1, "parameter": name, "divergences": n_div,
+             "divergent_share": n_div / study.draws_per_fit,
+             **rank_of_truth(float(true_el[name]), draws, n_rank_draws, intervals)}
+            for name, draws in _named_draws(idata.posterior, checked).items()]
+    return rows, n_div
+
+
+def _calibration_task(key: str, setup: tuple, d: int, truth: dict[str, np.ndarray], data: Any, seed: int,
+                      checked: Sequence[str], n_rank_draws: int, intervals: Sequence[float],
+                      tag: Any = None) -> tuple[list[dict[str, Any]], int]:
+    """One calibration fit on a cluster worker; the study is built (and compiled) once per worker."""
+    from cladewise.studies.cluster import report_start, worker_memo
+
+    report_start(tag)
+    ref, spec, options, compile = setup
+    study = worker_memo(key, lambda: compile_study(ref, spec, options, compile=compile))
+    return calibration_rows(study, d, truth, data, seed, checked, n_rank_draws, intervals)
 
 
 def rank_of_truth(

@@ -15,8 +15,18 @@ deleted and their fits redone. One grid run per output folder at a time (a lock
 file ``OUT/.grid.lock`` holds the running process id).
 
 The default cluster is a dask ``LocalCluster`` on this machine (2 worker processes,
-1 thread each); ``scheduler`` sends the fits to an existing dask scheduler whose
-workers can import cladewise and read the same files.
+1 thread each); ``scheduler`` sends the fits to a dask scheduler started on its own
+(``dask scheduler`` and ``dask worker`` on a server or a batch system; see
+:mod:`cladewise.studies.cluster`). Workers need cladewise installed but not the
+client's files: each fit's inputs travel with it and its folder comes back as bytes
+(:mod:`cladewise.studies.remote_fit`); only the client writes to ``OUT``. A worker
+killed in the middle of a fit: dask runs the fit again on another worker; nothing
+half-written reaches ``OUT``.
+
+Progress: one line per finished fit (``echo``), a callback with the counts
+(``on_progress``) and ``OUT/grid_status.json``, rewritten atomically after every
+change: ``state`` (running, finished), counts total/done/running/failed/skipped/
+remaining and each fit's state, so a grid run in the background can be watched.
 """
 
 from __future__ import annotations
@@ -26,21 +36,23 @@ import os
 import shutil
 import socket
 import time
-import uuid
-from dataclasses import asdict
 from pathlib import Path
 from typing import Any, Callable
 
 import pandas as pd
 
 from cladewise.config.grid import GridJob, load_grid
+from cladewise.studies.cluster import TaskCounts, connect, run_tasks
+from cladewise.studies.remote_fit import ROW_COLUMNS, empty_row, pack_job, run_packed_job, write_fit_folder
 from cladewise.errors import InputError
 from cladewise.inference.results import atomic_write, check_output_folder, is_cladewise_output, write_marker
 
-__all__ = ["is_finished", "run_job", "run_grid", "format_status", "LOCK_NAME", "STATUS_NAME"]
+__all__ = ["is_finished", "run_grid", "format_status", "LOCK_NAME", "STATUS_NAME", "STATUS_JSON"]
 
 LOCK_NAME = ".grid.lock"
 STATUS_NAME = "grid_status.csv"
+#: live progress of a running grid (rewritten atomically after every change)
+STATUS_JSON = "grid_status.json"
 
 
 # =========================================================================== one fit
@@ -52,32 +64,6 @@ def is_finished(folder: str | Path) -> bool:
     except (OSError, ValueError):
         return False
     return isinstance(js, dict) and "diagnostics" in js and (f / "posterior.nc").is_file()
-
-
-def run_job(job: dict[str, Any], out_dir: str) -> dict[str, Any]:
-    """Run one grid fit and write ``out_dir/<name>``; never raises (runs on a worker).
-
-    Returns a row of the status table: name, status ("done" or "failed"), seconds,
-    n_trees, max_rhat, diagnostics_ok, message.
-    """
-    j = GridJob(**job)
-    t0 = time.perf_counter()
-    target = Path(out_dir) / j.name
-    row: dict[str, Any] = {"name": j.name, "status": "failed", "seconds": float("nan"),
-                           "n_trees": None, "max_rhat": float("nan"), "diagnostics_ok": None, "message": ""}
-    command = f"cladewise grid (fit {j.name})"
-    try:
-        from cladewise.pipeline import fit_from_spec
-
-        res = fit_from_spec(j.spec, out=target, overwrite=True, trees=j.trees, n_trees=j.n_trees,
-                            progress=False, command=command, **j.sampling)
-        row["n_trees"] = len(getattr(res, "tree_indices", None) or [0])
-        row.update(status="done", max_rhat=res.diagnostics.max_rhat, diagnostics_ok=res.diagnostics.ok,
-                   message="; ".join(res.diagnostics.problems)[:300])
-    except Exception as exc:  # one failed fit must not stop the grid
-        row["message"] = f"{type(exc).__name__}: {exc}"[:500]
-    row["seconds"] = time.perf_counter() - t0
-    return row
 
 
 # =========================================================================== the grid
@@ -128,6 +114,7 @@ def run_grid(
     scheduler: str | None = None,
     n_workers: int = 2,
     echo: Callable[[str], None] | None = None,
+    on_progress: Callable[[TaskCounts], None] | None = None,
 ) -> pd.DataFrame:
     """Run every fit of a grid file, skipping finished ones; return the status table.
 
@@ -138,12 +125,15 @@ def run_grid(
     out_dir : path
         Folder that receives one sub-folder per fit and ``grid_status.csv``.
     scheduler : str, optional
-        Address of a running dask scheduler (``tcp://host:8786``); default: a
-        LocalCluster with ``n_workers`` processes of one thread each.
+        Address of a running dask scheduler (``tcp://host:8786``) or its scheduler
+        file; default: a LocalCluster with ``n_workers`` processes of one thread each.
     n_workers : int
         Worker processes of the local cluster.
     echo : callable, optional
         Receives one progress line per event (default: print to stdout).
+    on_progress : callable, optional
+        Called with the :class:`~cladewise.studies.cluster.TaskCounts` (done,
+        running, failed, skipped, remaining; each fit's state) after every change.
 
     Returns
     -------
@@ -167,64 +157,82 @@ def run_grid(
         if gone:
             say(f"removed {len(gone)} half-written folder(s) from an earlier run: {', '.join(gone)}")
         rows: dict[str, dict[str, Any]] = {}
+        counts = TaskCounts()
         todo = []
         for j in jobs:
             if is_finished(out / j.name):
-                rows[j.name] = {"name": j.name, "status": "skipped", "seconds": 0.0, "n_trees": None,
-                                "max_rhat": float("nan"), "diagnostics_ok": None,
+                rows[j.name] = {**empty_row(j.name), "status": "skipped", "seconds": 0.0,
                                 "message": "already finished (delete the folder to refit)"}
+                counts.states[j.name] = "skipped"
             else:
                 todo.append(j)
+                counts.states[j.name] = "waiting"
         say(f"grid: {len(jobs)} fits, {len(jobs) - len(todo)} already finished, {len(todo)} to run")
-        if todo:
-            for r in _run_on_dask(todo, out, scheduler, n_workers, say):
-                rows[r["name"]] = r
-        table = pd.DataFrame([rows[j.name] for j in jobs],
-                             columns=["name", "status", "seconds", "n_trees", "max_rhat", "diagnostics_ok", "message"])
+        _write_json(out, counts, "running", scheduler)
+        try:
+            if todo:
+                for r in _run_on_dask(todo, out, scheduler, n_workers, say, counts, on_progress):
+                    rows[r["name"]] = r
+        except BaseException:
+            _write_json(out, counts, "stopped", scheduler)
+            raise
+        _write_json(out, counts, "finished", scheduler)
+        table = pd.DataFrame([rows[j.name] for j in jobs], columns=ROW_COLUMNS)
         _write_status(out, table)
         return table
     finally:
         lock.unlink(missing_ok=True)
 
 
-def _run_on_dask(todo: list[GridJob], out: Path, scheduler: str | None, n_workers: int, say) -> list[dict[str, Any]]:
-    import logging
+def _write_json(out: Path, counts: TaskCounts, state: str, scheduler: str | None) -> None:
+    doc = {"state": state, **counts.as_dict(), "scheduler": scheduler or "local",
+           "pid": os.getpid(), "updated": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+           "fits": dict(counts.states)}
+    atomic_write(out / STATUS_JSON, json.dumps(doc, indent=1) + "\n")
 
-    from dask.distributed import Client, LocalCluster, as_completed
 
-    cluster = None
-    if scheduler:
-        try:
-            client = Client(scheduler, timeout="20s")
-        except (OSError, TimeoutError) as exc:
-            raise InputError(f"cannot reach the dask scheduler at {scheduler!r} ({exc}); check the address") from None
-        say(f"sending {len(todo)} fits to the dask scheduler at {scheduler}")
-    else:
-        cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True,
-                               dashboard_address=None, silence_logs=logging.ERROR)
-        client = Client(cluster)
-        say(f"started a local dask cluster: {n_workers} worker process(es), 1 thread each")
+def _run_on_dask(todo: list[GridJob], out: Path, scheduler: str | None, n_workers: int, say,
+                 counts: TaskCounts, on_progress) -> list[dict[str, Any]]:
+    tasks = []
     results: list[dict[str, Any]] = []
-    try:
-        token = uuid.uuid4().hex[:8]
-        futures = {}
-        for j in todo:
-            fut = client.submit(run_job, asdict(j), str(out), key=f"cladewise-fit-{j.name}-{token}", pure=False)
-            futures[fut] = j
-        for k, fut in enumerate(as_completed(futures), 1):
-            j = futures[fut]
-            try:
-                r = fut.result()
-            except Exception as exc:  # the worker died or the task could not run
-                r = {"name": j.name, "status": "failed", "seconds": float("nan"), "n_trees": None,
-                     "max_rhat": float("nan"), "diagnostics_ok": None, "message": f"{type(exc).__name__}: {exc}"[:500]}
+    for j in todo:
+        try:
+            tasks.append((j.name, (pack_job(j),)))
+        except (InputError, OSError) as exc:  # an unreadable spec or data file fails this fit only
+            results.append({**empty_row(j.name), "message": f"{type(exc).__name__}: {exc}"[:500]})
+            counts.states[j.name] = "failed"
+            say(f"{j.name}: failed: {results[-1]['message']}")
+    last = [0.0]
+
+    def changed(c: TaskCounts) -> None:
+        now = time.monotonic()
+        if now - last[0] > 0.5 or c.remaining == 0:  # at most two status files a second
+            last[0] = now
+            _write_json(out, c, "running", scheduler)
+        if on_progress is not None:
+            on_progress(c)
+
+    k = 0
+    if not tasks:
+        return results
+    with connect(scheduler, n_workers, say) as client:
+        if scheduler:
+            say(f"sending {len(todo)} fits to the dask scheduler at {scheduler}")
+        for name, r, err in run_tasks(client, run_packed_job, tasks, counts=counts, on_change=changed,
+                                      state_of=lambda r: r["status"]):
+            k += 1
+            if err is not None:  # the worker died more often than dask allows, or the task could not run
+                r = {**empty_row(name), "message": f"{type(err).__name__}: {err}"[:500]}
+            files = r.pop("files", None) or {}
+            if r["status"] == "done":
+                try:
+                    write_fit_folder(out / name, files)
+                except OSError as exc:
+                    r.update(status="failed", message=f"could not write {out / name}: {exc}")
+                    counts.states[name] = "failed"
             results.append(r)
             extra = "" if r["status"] == "done" else f": {r['message']}"
-            say(f"[{k}/{len(todo)}] {r['name']}: {r['status']} in {r['seconds']:.0f} s{extra}")
-    finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
+            say(f"[{k}/{len(todo)}] {name}: {r['status']} in {r['seconds']:.0f} s{extra}  ({counts.line()})")
     return results
 
 

@@ -244,6 +244,8 @@ def run_power_study(
     hdi_prob: float = 0.95,
     alpha: float = 0.05,
     progress: Progress = None,
+    scheduler: str | None = None,
+    n_workers: int | None = None,
 ) -> PowerResult:
     """Power and false-positive rate of the correlated BM fit on a tree, by simulation.
 
@@ -274,13 +276,18 @@ def run_power_study(
         Significance level of the Pearson test.
     progress : callable, optional
         Called with one line of text after each batch of fits.
+    scheduler : str, optional
+        Run the fits as one task per data set on the dask scheduler at this address
+        (or scheduler file); see :mod:`cladewise.studies.cluster`. The numbers are
+        the same as in one process: data sets and seeds are drawn here first.
+    n_workers : int, optional
+        Without ``scheduler``: run the fits on a local dask cluster of this many
+        worker processes (default: in this process).
 
     Returns
     -------
     PowerResult
     """
-    import arviz as az
-
     check_study_tree(tree)
     names = _traits(traits)
     corrs = [float(c) for c in np.atleast_1d(np.asarray(correlations, dtype=float))]
@@ -298,32 +305,34 @@ def run_power_study(
 
     t0 = time.perf_counter()
     y_ref = simulate_datasets(tree, _rate_matrix(rates_v, 0.0), mu, se_arr, gen, 1)[0]
-    say(progress, "compiling the model (once for the whole study) ...")
-    study = make_refit_study(tree, names, y_ref, se_arr, options)
-    say(progress, f"compiled in {time.perf_counter() - t0:.0f} s")
-
-    rows = []
     fit_seeds = gen.integers(1, 2**31 - 1, size=(len(corrs), n_datasets))
+    # every data set and its sampler seed are fixed here, before any fit, so a
+    # cluster gives the same numbers as this process
+    work = []
     for ci, c in enumerate(corrs):
         ys = simulate_datasets(tree, _rate_matrix(rates_v, c), mu, se_arr, gen, n_datasets)
+        work += [(c, d, ys[d], int(fit_seeds[ci, d])) for d in range(n_datasets)]
+    setup = (tree, names, y_ref, se_arr, options)
+    if scheduler is None and n_workers is None:
+        say(progress, "compiling the model (once for the whole study) ...")
+        study = make_refit_study(*setup)
+        say(progress, f"compiled in {time.perf_counter() - t0:.0f} s")
+        rows = []
         t1 = time.perf_counter()
-        for d in range(n_datasets):
-            y = ys[d]
-            idata = study.fit(y, int(fit_seeds[ci, d]))
-            draws = idata.posterior["evo_corr"][:, :, 0, 1].to_numpy().ravel()
-            lo, hi = az.hdi(draws, hdi_prob=float(hdi_prob))
-            r, p = stats.pearsonr(y[:, 0], y[:, 1])
-            div, rhat = fit_problems(idata)
-            rows.append({
-                "true_correlation": c, "dataset": d + 1,
-                "evo_corr_mean": float(draws.mean()), "hdi_low": float(lo), "hdi_high": float(hi),
-                "phylo_significant": bool(lo > 0 or hi < 0),
-                "pearson_r": float(r), "pearson_p": float(p), "pearson_significant": bool(p < alpha),
-                "divergences": div, "rhat": rhat,
-            })
+        for k, (c, d, y, s) in enumerate(work):
+            rows.append(power_row(study, c, d, y, s, hdi_prob, alpha))
             if progress is not None and ((d + 1) % 10 == 0 or d + 1 == n_datasets):
                 say(progress, f"correlation {c:g}: {d + 1}/{n_datasets} fits "
-                               f"({(time.perf_counter() - t1) / (d + 1):.1f} s per fit)")
+                               f"({(time.perf_counter() - t1) / (k + 1):.1f} s per fit)")
+    else:
+        from cladewise.studies.cluster import map_study
+
+        study = make_refit_study(*setup, compile=False)  # here only for its prior and spec
+        from cladewise.studies.cluster import memo_key
+
+        key = memo_key("power", *setup)
+        rows = map_study(_power_task, [(key, setup, c, d, y, s, hdi_prob, alpha) for c, d, y, s in work],
+                         scheduler=scheduler, n_workers=n_workers or 2, progress=progress, what="power fits")
     fits = pd.DataFrame(rows)
     table = _power_table(fits)
     settings = {
@@ -340,6 +349,35 @@ def run_power_study(
         "seconds": round(time.perf_counter() - t0, 1),
     }
     return PowerResult(table, fits, settings)
+
+
+def power_row(study: Any, c: float, d: int, y: np.ndarray, seed: int, hdi_prob: float,
+              alpha: float) -> dict[str, Any]:
+    """Fit one simulated data set and return its row of ``PowerResult.fits``."""
+    import arviz as az
+
+    idata = study.fit(y, seed)
+    draws = idata.posterior["evo_corr"][:, :, 0, 1].to_numpy().ravel()
+    lo, hi = az.hdi(draws, hdi_prob=float(hdi_prob))
+    r, p = stats.pearsonr(y[:, 0], y[:, 1])
+    div, rhat = fit_problems(idata)
+    return {
+        "true_correlation": c, "dataset": d + 1,
+        "evo_corr_mean": float(draws.mean()), "hdi_low": float(lo), "hdi_high": float(hi),
+        "phylo_significant": bool(lo > 0 or hi < 0),
+        "pearson_r": float(r), "pearson_p": float(p), "pearson_significant": bool(p < alpha),
+        "divergences": div, "rhat": rhat,
+    }
+
+
+def _power_task(key: str, setup: tuple, c: float, d: int, y: np.ndarray, seed: int, hdi_prob: float, alpha: float,
+                tag: Any = None) -> dict[str, Any]:
+    """One power fit on a cluster worker; the compiled study is made once per worker."""
+    from cladewise.studies.cluster import report_start, worker_memo
+
+    report_start(tag)
+    study = worker_memo(key, lambda: make_refit_study(*setup))
+    return power_row(study, c, d, y, seed, hdi_prob, alpha)
 
 
 def _share(flags: pd.Series) -> tuple[float, float]:

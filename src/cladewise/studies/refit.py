@@ -104,9 +104,13 @@ class RefitStudy:
 
 
 def make_refit_study(
-    tree: FlatTree, traits: list[str], y_ref: np.ndarray, se: np.ndarray | None, options: Any
+    tree: FlatTree, traits: list[str], y_ref: np.ndarray, se: np.ndarray | None, options: Any,
+    compile: bool = True,
 ) -> RefitStudy:
-    """Build and compile the correlated BM model (known se when ``se`` is given) on ``y_ref``."""
+    """Build and compile the correlated BM model (known se when ``se`` is given) on ``y_ref``.
+
+    ``compile=False`` builds only (a client whose fits run on a cluster).
+    """
     from cladewise.model.build import ModelData, ModelSpec
 
     species = list(tree.tip_names)
@@ -114,7 +118,7 @@ def make_refit_study(
     se_df = None if se is None else pd.DataFrame(se, index=species, columns=traits)
     spec = ModelSpec(kind="correlated", traits=traits, evolution="bm",
                      measurement_error="none" if se is None else "se")
-    return compile_study(ModelData(tree, values, se=se_df), spec, options)
+    return compile_study(ModelData(tree, values, se=se_df), spec, options, compile=compile)
 
 
 def compile_study(data: Any, spec: Any, options: Any, compile: bool = True) -> RefitStudy:
