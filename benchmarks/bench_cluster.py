@@ -88,6 +88,8 @@ def main() -> None:
 
     env = {**os.environ, "PYTHONPATH": str(REPO / "src")}
     procs = []
+    # a stopped benchmark stops its scheduler and workers too
+    signal.signal(signal.SIGTERM, lambda *_: sys.exit(1))
     try:
         sched = home / "scheduler.json"
         procs.append(subprocess.Popen(_dask() + ["scheduler", "--port", "0", "--no-dashboard",

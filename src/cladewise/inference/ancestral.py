@@ -372,7 +372,9 @@ def reconstruct(
         dev = m / good
         sd = np.sqrt(np.maximum(m2 / good - dev**2, 0.0))
         mean = shift + dev
-        lo, hi = hdi_along_first(draws[ok].astype(float)) if draws.shape[1] else (mean * np.nan, mean * np.nan)
+        lo, hi = np.full(mean.shape, np.nan), np.full(mean.shape, np.nan)
+        for c in range(0, draws.shape[1], 1024):  # in slices: no float64 copy of all draws at once
+            lo[c:c + 1024], hi[c:c + 1024] = hdi_along_first(draws[ok, c:c + 1024].astype(float))
         return mean, sd, lo, hi
 
     nmean, nsd, nlo, nhi = summary(node_draws, node_m, node_m2, shift_n)
@@ -415,7 +417,8 @@ def reconstruct(
         cells = [(i, j) for i in range(len(rows)) for j in range(k) if not observed[rows[i], j]]
         ci = np.array([c[0] for c in cells])
         cj = np.array([c[1] for c in cells])
-        sp = [built.species[rows[i]] for i in ci]
+        species = built.species  # a property that builds a list: once, not per cell
+        sp = [species[rows[i]] for i in ci]
         tr = [traits[j] for j in cj]
         n_obs = observed[rows].sum(axis=1)[ci]
         pred_df = pd.DataFrame({
