@@ -55,7 +55,7 @@ from cladewise.engine.api import (
 
 def __getattr__(name: str):
     # PyTensor is imported lazily: the numpy entry points should not pay its import.
-    if name in ("tree_loglik", "TreeLoglik"):
+    if name in ("tree_loglik", "TreeLoglik", "TreeLoglikRegimes"):
         from cladewise.engine import op
 
         return getattr(op, name)
@@ -71,4 +71,5 @@ __all__ = [
     "ancestral_states",
     "tree_loglik",
     "TreeLoglik",
+    "TreeLoglikRegimes",
 ]

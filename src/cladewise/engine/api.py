@@ -98,7 +98,30 @@ def _error_cov(err_var: np.ndarray, observed: np.ndarray, draws: bool) -> tuple[
     return full, True
 
 
-def _prepare(parent, lengths, y, observed, R, E, err_var, mu, draws: bool = False):
+def _check_regime(regime, R: np.ndarray, n_nodes: int, draws: bool) -> np.ndarray:
+    """Validate a per-branch regime index against ``R``; return it as int64 (2-d for draws)."""
+    n_reg = R.shape[-3]
+    regime = np.asarray(regime)
+    if regime.dtype.kind not in "iu":
+        if regime.dtype.kind == "f" and np.all(np.isfinite(regime)) and np.all(regime % 1 == 0):
+            regime = regime.astype(np.int64)
+        else:
+            raise InputError("regime must hold integer regime numbers, one per node")
+    regime = np.ascontiguousarray(regime, dtype=np.int64)
+    if regime.shape[-1:] != (n_nodes,) or regime.ndim > (2 if draws else 1):
+        raise InputError(
+            f"regime must have one entry per node ({n_nodes}); got shape {regime.shape}"
+        )
+    if regime.size and (regime.min() < 0 or regime.max() >= n_reg):
+        raise InputError(
+            f"regime numbers must lie in 0..{n_reg - 1} (one rate matrix per regime in R); "
+            f"got values from {regime.min()} to {regime.max()}"
+        )
+    return regime.reshape(-1, n_nodes) if draws else regime
+
+
+def _prepare(parent, lengths, y, observed, R, E, err_var, mu, draws: bool = False,
+             regime=None):
     parent = np.ascontiguousarray(parent, dtype=np.int64)
     y = np.array(y, dtype=np.float64, copy=True, ndmin=2)
     if y.ndim != 2:
@@ -121,10 +144,23 @@ def _prepare(parent, lengths, y, observed, R, E, err_var, mu, draws: bool = Fals
     err, diagonal = _error_cov(err_var, observed, draws)
     if mu.shape[-1:] != (k,) or not np.all(np.isfinite(mu)):
         raise InputError(f"mu must hold {k} finite root means; got shape {mu.shape}")
+    if regime is not None:
+        r_ndim = 4 if draws else 3
+        if R.ndim == r_ndim - 1:
+            R = R[..., None, :, :] if draws else R[None]
+        if R.ndim != r_ndim:
+            raise InputError(
+                "with regimes R must be (regimes x traits x traits)"
+                + (" per draw" if draws else "") + f"; got shape {R.shape}"
+            )
+        regime = _check_regime(regime, R, parent.shape[0], draws)
     if not draws:
-        if lengths.ndim != 1 or R.ndim != 2 or E.ndim != 2 or mu.ndim != 1:
+        if (lengths.ndim != 1 or R.ndim != (2 if regime is None else 3) or E.ndim != 2
+                or mu.ndim != 1):
             raise InputError("lengths, R, E, err_var and mu must be single values, not draws")
         _check_tips(parent, lengths, observed, E, err)
+    if regime is not None:
+        return (parent, lengths, y, observed, R, regime, E, err, mu), diagonal
     return (parent, lengths, y, observed, R, E, err, mu), diagonal
 
 
@@ -142,7 +178,7 @@ def _check_tips(parent, lengths, observed, E, err) -> None:
             )
 
 
-def loglik(parent, lengths, y, observed, R, E, err_var, mu) -> float:
+def loglik(parent, lengths, y, observed, R, E, err_var, mu, *, regime=None) -> float:
     """Log-likelihood of the observed cells, computed in O(N k^3).
 
     Parameters
@@ -157,23 +193,31 @@ def loglik(parent, lengths, y, observed, R, E, err_var, mu) -> float:
         Which cells of ``y`` are observed.
     R, E : (k, k) float
         Evolutionary rate matrix (positive definite) and species-level covariance
-        (positive semidefinite; zeros when absent).
+        (positive semidefinite; zeros when absent). With ``regime``, ``R`` is
+        ``(n_regimes, k, k)``: one rate matrix per regime.
     err_var : (N, k) or (N, k, k) float
         Measurement-error variances, or each species' full error covariance
         (symmetric, positive semidefinite on its observed traits; the rows and
         columns of unobserved traits are ignored).
     mu : (k,) float
         Root mean.
+    regime : (n_nodes,) int, optional
+        Regime of each branch (multi-rate Brownian motion, O'Meara et al. 2006): the
+        branch above node ``v`` has covariance ``lengths[v] * R[regime[v]]``.
 
     Returns
     -------
     float
     """
-    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
+    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu, regime=regime)
+    if regime is not None:
+        return float(kernels.loglik_regimes_kernel(*args))
     return float(kernels.loglik_kernel(*args))
 
 
-def loglik_and_grad(parent, lengths, y, observed, R, E, err_var, mu) -> tuple[float, dict]:
+def loglik_and_grad(
+    parent, lengths, y, observed, R, E, err_var, mu, *, regime=None
+) -> tuple[float, dict]:
     """Log-likelihood and its gradient with respect to every float input.
 
     Returns
@@ -186,10 +230,14 @@ def loglik_and_grad(parent, lengths, y, observed, R, E, err_var, mu) -> tuple[fl
         ``sum(grad["R"] * dR)``. For a full ``(N, k, k)`` error covariance,
         ``grad["err_var"]`` holds the partial derivative with respect to every entry
         (symmetric, zero in the rows and columns of unobserved cells), so that too
-        is read as ``sum(grad["err_var"] * dS)``.
+        is read as ``sum(grad["err_var"] * dS)``. With ``regime`` (see :func:`loglik`)
+        ``grad["R"]`` is ``(n_regimes, k, k)``, one matrix derivative per regime.
     """
-    args, diagonal = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
-    logp, dl, dy, dR, dE, dev, dmu = kernels.value_and_grad_kernel(*args)
+    args, diagonal = _prepare(parent, lengths, y, observed, R, E, err_var, mu,
+                              regime=regime)
+    kernel = kernels.value_and_grad_kernel if regime is None else (
+        kernels.value_and_grad_regimes_kernel)
+    logp, dl, dy, dR, dE, dev, dmu = kernel(*args)
     if diagonal:
         dev = np.ascontiguousarray(np.diagonal(dev, axis1=1, axis2=2))
     grad = {"lengths": dl, "y": dy, "R": dR, "E": dE, "err_var": dev, "mu": dmu}
@@ -197,28 +245,35 @@ def loglik_and_grad(parent, lengths, y, observed, R, E, err_var, mu) -> tuple[fl
 
 
 def loo_conditionals(
-    parent, lengths, y, observed, R, E, err_var, mu
+    parent, lengths, y, observed, R, E, err_var, mu, *, regime=None
 ) -> tuple[np.ndarray, np.ndarray]:
     """Predictive of each species' observation vector given all other species.
 
     Measurement error and ``E`` are included. Returns ``mean (N, k)`` and
-    ``cov (N, k, k)``.
+    ``cov (N, k, k)``. ``regime``: see :func:`loglik`.
     """
-    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
-    mean, cov, _, _ = kernels.loo_kernel(*args)
+    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu, regime=regime)
+    kernel = kernels.loo_kernel if regime is None else kernels.loo_regimes_kernel
+    mean, cov, _, _ = kernel(*args)
     return mean, cov
 
 
-def loo_logdensity(parent, lengths, y, observed, R, E, err_var, mu) -> np.ndarray:
+def loo_logdensity(
+    parent, lengths, y, observed, R, E, err_var, mu, *, regime=None
+) -> np.ndarray:
     """Log density of each species' observed cells under its leave-one-out predictive.
 
-    Zero for a species with nothing observed. Shape ``(N,)``.
+    Zero for a species with nothing observed. Shape ``(N,)``. ``regime``: see
+    :func:`loglik`.
     """
-    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
-    return kernels.loo_kernel(*args)[2]
+    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu, regime=regime)
+    kernel = kernels.loo_kernel if regime is None else kernels.loo_regimes_kernel
+    return kernel(*args)[2]
 
 
-def loo_logdensity_draws(parent, lengths, y, observed, R, E, err_var, mu) -> np.ndarray:
+def loo_logdensity_draws(
+    parent, lengths, y, observed, R, E, err_var, mu, *, regime=None
+) -> np.ndarray:
     """:func:`loo_logdensity` for many posterior draws, looped in numba.
 
     Parameters
@@ -229,15 +284,21 @@ def loo_logdensity_draws(parent, lengths, y, observed, R, E, err_var, mu) -> np.
         Variances (diagonal error) or full error covariances; a single full
         covariance shared by all draws is passed as ``(1, N, k, k)``.
     mu : (S, k)
+    regime : (n_nodes,) or (S, n_nodes) int, optional
+        Regime of each branch (see :func:`loglik`); ``R`` is then
+        ``(S, n_regimes, k, k)``.
 
     Returns
     -------
     (S, N) array; NaN for a draw whose likelihood cannot be evaluated.
     """
-    (parent, lengths, y, observed, R, E, err, mu), _ = _prepare(
-        parent, lengths, y, observed, R, E, err_var, mu, draws=True
-    )
-    if R.ndim != 3 or E.ndim != 3 or mu.ndim != 2:
+    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu, draws=True,
+                       regime=regime)
+    if regime is None:
+        parent, lengths, y, observed, R, E, err, mu = args
+    else:
+        parent, lengths, y, observed, R, regime, E, err, mu = args
+    if R.ndim != (3 if regime is None else 4) or E.ndim != 3 or mu.ndim != 2:
         raise InputError("R and E must be (draws, k, k) and mu (draws, k)")
     S = R.shape[0]
     lengths2 = lengths.reshape(-1, lengths.shape[-1])
@@ -245,17 +306,24 @@ def loo_logdensity_draws(parent, lengths, y, observed, R, E, err_var, mu) -> np.
     for name, a in (("E", E), ("mu", mu), ("lengths", lengths2), ("err_var", err4)):
         if a.shape[0] not in ((S,) if name in ("E", "mu") else (1, S)):
             raise InputError(f"{name} has {a.shape[0]} draws but R has {S}")
+    if regime is not None:
+        if regime.shape[0] not in (1, S):
+            raise InputError(f"regime has {regime.shape[0]} rows but R has {S} draws")
+        return kernels.loo_logdens_draws_regimes_kernel(
+            parent, lengths2, y, observed, R, regime, E, err4, mu)
     return kernels.loo_logdens_draws_kernel(parent, lengths2, y, observed, R, E, err4, mu)
 
 
 def ancestral_states(
-    parent, lengths, y, observed, R, E, err_var, mu
+    parent, lengths, y, observed, R, E, err_var, mu, *, regime=None
 ) -> tuple[np.ndarray, np.ndarray]:
     """Posterior of the latent value at every node given all data.
 
     Returns ``mean (n_nodes, k)`` and ``cov (n_nodes, k, k)``; rows ``0..N-1`` are
-    the latent true species means, the others the internal nodes.
+    the latent true species means, the others the internal nodes. ``regime``: see
+    :func:`loglik`.
     """
-    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu)
-    mean, cov, _ = kernels.ancestral_kernel(*args)
+    args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu, regime=regime)
+    kernel = kernels.ancestral_kernel if regime is None else kernels.ancestral_regimes_kernel
+    mean, cov, _ = kernel(*args)
     return mean, cov

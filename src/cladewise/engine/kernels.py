@@ -244,7 +244,7 @@ def _observed_index(observed, i, idx):
 
 
 @njit(**_JIT)
-def upward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs):
+def upward(parent, lengths, y, observed, R, regime, E, err, mu, Jn, hn, Ju, hu, Js, hs):
     """Pruning pass from the tips to the root; returns the log-likelihood.
 
     Fills, for every node ``v``: ``Jn[v], hn[v]`` the message at the node (sum of
@@ -268,6 +268,7 @@ def upward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs):
     total = 0.0
     for v in range(n):
         t = lengths[v]
+        rg = regime[v]
         Jv = Ju[v]
         hv = hu[v]
         if v < ntip:
@@ -281,7 +282,7 @@ def upward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs):
                     ia = idx[a]
                     for b in range(q):
                         ib = idx[b]
-                        K[a, b] = (t * R[ia, ib] + E[ia, ib]
+                        K[a, b] = (t * R[rg, ia, ib] + E[ia, ib]
                                    + 0.5 * (err[v, ia, ib] + err[v, ib, ia]))
                 logdet = chol_inv(K, q, W)
                 if math.isnan(logdet):
@@ -303,7 +304,7 @@ def upward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs):
         else:
             for i in range(k):
                 for j in range(k):
-                    K[i, j] = t * R[i, j]
+                    K[i, j] = t * R[rg, i, j]
             logdet = absorb(Jn[v], hn[v], K, zero, M, piv, Jv, hv, k)
             quad = 0.0
             for i in range(k):
@@ -435,7 +436,7 @@ _tip_terms = njit(**_JIT)(_tip_terms_py)
 
 
 @njit(**_JIT)
-def downward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs,
+def downward(parent, lengths, y, observed, R, regime, E, err, mu, Jn, hn, Ju, hu, Js, hs,
              sufJ, sufh, m, P, mode, d_lengths, d_y, d_R, d_E, d_err, d_mu,
              loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     """Pass from the root to the tips after :func:`upward`.
@@ -471,16 +472,17 @@ def downward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs
 
     root = n - 1
     t = lengths[root]
+    rg = regime[root]
     m[root] = mu
     for i in range(k):
         for j in range(k):
-            P[root, i, j] = t * R[i, j]
+            P[root, i, j] = t * R[rg, i, j]
     if root < ntip:
-        _tip_terms(root, t, y, observed, R, E, err, m, P, mode, idx, K, W, r, Wr,
-                   d_lengths, d_y, d_R, d_E, d_err, d_mu, True,
+        _tip_terms(root, t, y, observed, R[rg], E, err, m, P, mode, idx, K, W, r, Wr,
+                   d_lengths, d_y, d_R[rg], d_E, d_err, d_mu, True,
                    loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov, k)
     elif want_internal:
-        _internal_terms(root, t, Jn, hn, m, P, R, mode, M, piv, H, g, d_lengths, d_R,
+        _internal_terms(root, t, Jn, hn, m, P, R[rg], mode, M, piv, H, g, d_lengths, d_R[rg],
                         anc_mean, anc_cov, k)
         if mode & MODE_GRAD:
             d_mu[:] = g
@@ -530,17 +532,19 @@ def downward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs
                 for j in range(k):
                     Pc[i, j] = Pp[i, j]
         t = lengths[c]
+        rg = regime[c]
         for i in range(k):
             for j in range(i + 1):
-                s = 0.5 * (Pc[i, j] + Pc[j, i]) + t * R[i, j]
+                s = 0.5 * (Pc[i, j] + Pc[j, i]) + t * R[rg, i, j]
                 Pc[i, j] = s
                 Pc[j, i] = s
         if c < ntip:
-            _tip_terms(c, t, y, observed, R, E, err, m, P, mode, idx, K, W, r, Wr,
-                       d_lengths, d_y, d_R, d_E, d_err, d_mu, False,
+            _tip_terms(c, t, y, observed, R[rg], E, err, m, P, mode, idx, K, W, r, Wr,
+                       d_lengths, d_y, d_R[rg], d_E, d_err, d_mu, False,
                        loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov, k)
         elif want_internal:
-            _internal_terms(c, t, Jn, hn, m, P, R, mode, M, piv, H, g, d_lengths, d_R,
+            _internal_terms(c, t, Jn, hn, m, P, R[rg], mode, M, piv, H, g, d_lengths,
+                            d_R[rg],
                             anc_mean, anc_cov, k)
 
 
@@ -579,7 +583,7 @@ def _absorb2(j00, j01, j11, h0, h1, v00, v01, v10, v11, m0, m1):
 
 
 @njit(**_JIT)
-def _upward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
+def _upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
     """:func:`upward` for k = 2 on the workspace of :func:`_workspace2`.
 
     ``Pm[v - N, 0:5]`` accumulates the message at internal node ``v`` (sum of its
@@ -590,10 +594,6 @@ def _upward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
     n = parent.shape[0]
     ntip = y.shape[0]
     store = Sq.shape[0] > 0
-    r00 = R[0, 0]
-    r01 = R[0, 1]
-    r10 = R[1, 0]
-    r11 = R[1, 1]
     e00 = E[0, 0]
     e10 = E[1, 0]
     e11 = E[1, 1]
@@ -608,6 +608,12 @@ def _upward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
     h1 = 0.0
     for v in range(n):
         t = lengths[v]
+        # this branch's regime rate matrix (one regime: always R[0])
+        rg = regime[v]
+        r00 = R[rg, 0, 0]
+        r01 = R[rg, 0, 1]
+        r10 = R[rg, 1, 0]
+        r11 = R[rg, 1, 1]
         if v < ntip:
             o0 = observed[v, 0]
             o1 = observed[v, 1]
@@ -691,7 +697,7 @@ def _upward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
 
 
 @njit(**_JIT)
-def _tips2(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
+def _tips2(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
            d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     """:func:`_tip_terms` of every tip for k = 2, in one sequential sweep.
 
@@ -700,16 +706,12 @@ def _tips2(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_
     """
     ntip = y.shape[0]
     root = parent.shape[0] - 1
-    r00 = R[0, 0]
-    r01 = R[0, 1] + R[1, 0]
-    r11 = R[1, 1]
     e00 = E[0, 0]
     e01 = E[0, 1]
     e10 = E[1, 0]
     e11 = E[1, 1]
-    dR00 = 0.0
-    dR01 = 0.0
-    dR11 = 0.0
+    # d R per regime: columns 00, 01, 11
+    dRr = np.zeros((R.shape[0], 3))
     dE00 = 0.0
     dE01 = 0.0
     dE11 = 0.0
@@ -765,13 +767,15 @@ def _tips2(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_
             loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1) - 0.5 * logdet - 0.5 * q * _LOG_2PI
         if mode & MODE_GRAD:
             t = lengths[c]
+            rg = regime[c]
             G00 = 0.5 * (a0 * a0 - w00)
             G01 = 0.5 * (a0 * a1 - w01)
             G11 = 0.5 * (a1 * a1 - w11)
-            d_lengths[c] = r00 * G00 + r01 * G01 + r11 * G11
-            dR00 += t * G00
-            dR01 += t * G01
-            dR11 += t * G11
+            d_lengths[c] = (R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01
+                            + R[rg, 1, 1] * G11)
+            dRr[rg, 0] += t * G00
+            dRr[rg, 1] += t * G01
+            dRr[rg, 2] += t * G11
             dE00 += G00
             dE01 += G01
             dE11 += G11
@@ -797,10 +801,11 @@ def _tips2(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_
             anc_cov[c, 1, 0] = p01 - (t10 * p00 + t11 * p01)
             anc_cov[c, 1, 1] = p11 - (t10 * p01 + t11 * p11)
     if mode & MODE_GRAD:
-        d_R[0, 0] += dR00
-        d_R[0, 1] += dR01
-        d_R[1, 0] += dR01
-        d_R[1, 1] += dR11
+        for rg in range(R.shape[0]):
+            d_R[rg, 0, 0] += dRr[rg, 0]
+            d_R[rg, 0, 1] += dRr[rg, 1]
+            d_R[rg, 1, 0] += dRr[rg, 1]
+            d_R[rg, 1, 1] += dRr[rg, 2]
         d_E[0, 0] += dE00
         d_E[0, 1] += dE01
         d_E[1, 0] += dE01
@@ -808,7 +813,7 @@ def _tips2(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_
 
 
 @njit(**_JIT)
-def _downward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
+def _downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                anc_mean, anc_cov):
     """:func:`downward` for k = 2 after :func:`_upward2`.
@@ -830,13 +835,8 @@ def _downward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
         d_E[:] = 0.0
         d_err[:] = 0.0
         d_mu[:] = 0.0
-    r00 = R[0, 0]
-    r10 = R[1, 0]
-    r11 = R[1, 1]
-    rtr01 = R[0, 1] + R[1, 0]
-    dR00 = 0.0
-    dR01 = 0.0
-    dR11 = 0.0
+    # d R per regime: columns 00, 01, 11
+    dRr = np.zeros((R.shape[0], 3))
     root = n - 1
     for c in range(root, -1, -1):
         t = lengths[c]
@@ -886,8 +886,11 @@ def _downward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
                 q00 = p00
                 q01 = p01
                 q11 = p11
+        rg = regime[c]
+        r00 = R[rg, 0, 0]
+        r11 = R[rg, 1, 1]
         q00 += t * r00
-        q01 += t * r10
+        q01 += t * R[rg, 1, 0]
         q11 += t * r11
         if c < ntip:
             Sq[c, 0] = nm0
@@ -910,10 +913,10 @@ def _downward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
                 G00 = 0.5 * (g0 * g0 - H00)
                 G01 = 0.5 * (g0 * g1 - H01)
                 G11 = 0.5 * (g1 * g1 - H11)
-                d_lengths[c] = r00 * G00 + rtr01 * G01 + r11 * G11
-                dR00 += t * G00
-                dR01 += t * G01
-                dR11 += t * G11
+                d_lengths[c] = r00 * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + r11 * G11
+                dRr[rg, 0] += t * G00
+                dRr[rg, 1] += t * G01
+                dRr[rg, 2] += t * G11
                 if c == root:
                     d_mu[0] = g0
                     d_mu[1] = g1
@@ -931,11 +934,12 @@ def _downward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
         for i in range(5):
             Pm[w, i] = 0.0
     if mode & MODE_GRAD:
-        d_R[0, 0] += dR00
-        d_R[0, 1] += dR01
-        d_R[1, 0] += dR01
-        d_R[1, 1] += dR11
-    _tips2(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
+        for rg in range(R.shape[0]):
+            d_R[rg, 0, 0] += dRr[rg, 0]
+            d_R[rg, 0, 1] += dRr[rg, 1]
+            d_R[rg, 1, 0] += dRr[rg, 1]
+            d_R[rg, 1, 1] += dRr[rg, 2]
+    _tips2(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
            d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
 
 
@@ -961,7 +965,7 @@ def _absorb1(j, h, v, m):
 
 
 @njit(**_JIT)
-def _upward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
+def _upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
     """:func:`upward` for k = 1 on the workspace of :func:`_workspace1`.
 
     ``Pm[v - N, 0:2]`` accumulates the message at internal node ``v``; ``Sq[v, 0:2]``
@@ -972,7 +976,6 @@ def _upward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
     n = parent.shape[0]
     ntip = y.shape[0]
     store = Sq.shape[0] > 0
-    r = R[0, 0]
     e = E[0, 0]
     for v in range(n - ntip):
         Pm[v, 0] = 0.0
@@ -982,6 +985,7 @@ def _upward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
     h = 0.0
     for v in range(n):
         t = lengths[v]
+        r = R[regime[v], 0, 0]
         if v < ntip:
             J = 0.0
             h = 0.0
@@ -1020,14 +1024,13 @@ def _upward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq):
 
 
 @njit(**_JIT)
-def _tips1(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
+def _tips1(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
            d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     """:func:`_tip_terms` of every tip for k = 1, in one sequential sweep."""
     ntip = y.shape[0]
     root = parent.shape[0] - 1
-    r = R[0, 0]
     e = E[0, 0]
-    dR = 0.0
+    dRr = np.zeros(R.shape[0])
     dE = 0.0
     for c in range(ntip):
         m = Sq[c, 0]
@@ -1053,8 +1056,9 @@ def _tips1(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_
             loo_logdens[c] = -0.5 * (a * res) - 0.5 * logdet - 0.5 * _LOG_2PI
         if mode & MODE_GRAD:
             G = 0.5 * (a * a - w)
-            d_lengths[c] = r * G
-            dR += lengths[c] * G
+            rg = regime[c]
+            d_lengths[c] = R[rg, 0, 0] * G
+            dRr[rg] += lengths[c] * G
             dE += G
             d_err[c, 0, 0] = G
             d_y[c, 0] = -a
@@ -1065,12 +1069,13 @@ def _tips1(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_
             # p - p w p, as p (s - p) / s without cancellation
             anc_cov[c, 0, 0] = p * ((e + err[c, 0, 0]) * w)
     if mode & MODE_GRAD:
-        d_R[0, 0] += dR
+        for rg in range(R.shape[0]):
+            d_R[rg, 0, 0] += dRr[rg]
         d_E[0, 0] += dE
 
 
 @njit(**_JIT)
-def _downward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
+def _downward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                anc_mean, anc_cov):
     """:func:`downward` for k = 1 after :func:`_upward1`.
@@ -1090,8 +1095,7 @@ def _downward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
         d_E[:] = 0.0
         d_err[:] = 0.0
         d_mu[:] = 0.0
-    r = R[0, 0]
-    dR = 0.0
+    dRr = np.zeros(R.shape[0])
     root = n - 1
     for c in range(root, -1, -1):
         t = lengths[c]
@@ -1117,6 +1121,8 @@ def _downward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
             else:
                 nm = m
                 q = P
+        rg = regime[c]
+        r = R[rg, 0, 0]
         q += t * r
         if c < ntip:
             Sq[c, 0] = nm
@@ -1131,7 +1137,7 @@ def _downward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
             if mode & MODE_GRAD:
                 G = 0.5 * (g * g - H)
                 d_lengths[c] = r * G
-                dR += t * G
+                dRr[rg] += t * G
                 if c == root:
                     d_mu[0] = g
             if mode & MODE_ANCESTRAL:
@@ -1140,8 +1146,9 @@ def _downward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
         Pm[w, 0] = 0.0
         Pm[w, 1] = 0.0
     if mode & MODE_GRAD:
-        d_R[0, 0] += dR
-    _tips1(parent, lengths, y, observed, R, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
+        for rg in range(R.shape[0]):
+            d_R[rg, 0, 0] += dRr[rg]
+    _tips1(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths, d_y, d_R, d_E,
            d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
 
 
@@ -1157,46 +1164,69 @@ def _workspace(n, k):
     return Jn, hn, Ju, hu, Js, hs
 
 
+# Regimes: ``R`` is ``(n_regimes, k, k)``, one rate matrix per regime, and
+# ``regime`` an int array with one entry per node: the branch above node ``v`` has
+# covariance ``lengths[v] * R[regime[v]]`` (the root edge uses ``regime[root]``).
+# This is the multi-rate Brownian motion of O'Meara et al. (2006) with every branch
+# in one regime; a branch that changes regime part-way is split by the caller or
+# given the regime of its lower end. The ``*_kernel`` entry points without
+# ``regimes`` in their name keep their single ``(k, k)`` signature and call the
+# regime versions with one regime.
 @njit(**_JIT)
-def loglik_kernel(parent, lengths, y, observed, R, E, err, mu):
-    """Log-likelihood only (one upward pass)."""
+def _one_regime(R, n):
+    k = R.shape[0]
+    return np.ascontiguousarray(R).reshape((1, k, k)), np.zeros(n, np.int64)
+
+
+@njit(**_JIT)
+def loglik_regimes_kernel(parent, lengths, y, observed, R, regime, E, err, mu):
+    """Log-likelihood only (one upward pass); ``R`` is ``(n_regimes, k, k)``."""
     n = parent.shape[0]
     k = y.shape[1]
     if k == 2:
-        return _upward2(parent, lengths, y, observed, R, E, err, mu,
+        return _upward2(parent, lengths, y, observed, R, regime, E, err, mu,
                         np.empty((n - y.shape[0], 5)), np.empty((0, 10)))
     if k == 1:
-        return _upward1(parent, lengths, y, observed, R, E, err, mu,
+        return _upward1(parent, lengths, y, observed, R, regime, E, err, mu,
                         np.empty((n - y.shape[0], 2)), np.empty((0, 4)))
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
-    return upward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs)
+    return upward(parent, lengths, y, observed, R, regime, E, err, mu, Jn, hn, Ju, hu,
+                  Js, hs)
 
 
 @njit(**_JIT)
-def _run(parent, lengths, y, observed, R, E, err, mu, mode, d_lengths, d_y, d_R,
+def loglik_kernel(parent, lengths, y, observed, R, E, err, mu):
+    """Log-likelihood only (one upward pass)."""
+    R3, regime = _one_regime(R, parent.shape[0])
+    return loglik_regimes_kernel(parent, lengths, y, observed, R3, regime, E, err, mu)
+
+
+@njit(**_JIT)
+def _run(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths, d_y, d_R,
          d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     n = parent.shape[0]
     k = y.shape[1]
     if k == 2:
         Pm, Sq = _workspace2(n, y.shape[0])
-        logp = _upward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq)
+        logp = _upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
         if not np.isfinite(logp):
             return logp
-        _downward2(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
+        _downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                    d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov,
                    loo_logdens, anc_mean, anc_cov)
         return logp
     if k == 1:
         Pm, Sq = _workspace1(n, y.shape[0])
-        logp = _upward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq)
+        logp = _upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
         if not np.isfinite(logp):
             return logp
-        _downward1(parent, lengths, y, observed, R, E, err, mu, Pm, Sq, mode,
+        _downward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                    d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov,
                    loo_logdens, anc_mean, anc_cov)
         return logp
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
-    logp = upward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs)
+    logp = upward(parent, lengths, y, observed, R, regime, E, err, mu, Jn, hn, Ju, hu,
+                  Js, hs)
     if not np.isfinite(logp):
         return logp
     # the upward pass is done with Jn's role as an accumulator, reuse nothing else
@@ -1204,35 +1234,32 @@ def _run(parent, lengths, y, observed, R, E, err, mu, mode, d_lengths, d_y, d_R,
     sufh = np.empty((n, k))
     m = np.empty((n, k))
     P = np.empty((n, k, k))
-    downward(parent, lengths, y, observed, R, E, err, mu, Jn, hn, Ju, hu, Js, hs,
+    downward(parent, lengths, y, observed, R, regime, E, err, mu, Jn, hn, Ju, hu, Js, hs,
              sufJ, sufh, m, P, mode, d_lengths, d_y, d_R, d_E, d_err, d_mu,
              loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov)
     return logp
 
 
 @njit(**_JIT)
-def value_and_grad_kernel(parent, lengths, y, observed, R, E, err, mu):
-    """Log-likelihood and its gradient.
+def value_and_grad_regimes_kernel(parent, lengths, y, observed, R, regime, E, err, mu):
+    """:func:`value_and_grad_kernel` with ``R`` ``(n_regimes, k, k)``.
 
-    Returns ``(logp, d_lengths, d_y, d_R, d_E, d_err, d_mu)``; the gradients
-    with respect to the symmetric matrices ``R`` and ``E`` are symmetric (the
-    derivative along a symmetric perturbation of an off-diagonal pair is
-    ``d[i, j] + d[j, i]``). Gradients are zero when ``logp`` is not finite.
+    ``d_R`` is ``(n_regimes, k, k)``, one symmetric matrix derivative per regime.
     """
     n = parent.shape[0]
     ntip = y.shape[0]
     k = y.shape[1]
     d_lengths = np.zeros(n)
     d_y = np.zeros((ntip, k))
-    d_R = np.zeros((k, k))
+    d_R = np.zeros(R.shape)
     d_E = np.zeros((k, k))
     d_err = np.zeros((ntip, k, k))
     d_mu = np.zeros(k)
     e1 = np.empty((0, k))
     e2 = np.empty((0, k, k))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, E, err, mu, MODE_GRAD, d_lengths, d_y,
-                d_R, d_E, d_err, d_mu, e1, e2, e0, e1, e2)
+    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_GRAD, d_lengths,
+                d_y, d_R, d_E, d_err, d_mu, e1, e2, e0, e1, e2)
     if not np.isfinite(logp):
         d_lengths[:] = 0.0
         d_y[:] = 0.0
@@ -1244,9 +1271,24 @@ def value_and_grad_kernel(parent, lengths, y, observed, R, E, err, mu):
 
 
 @njit(**_JIT)
-def loo_kernel(parent, lengths, y, observed, R, E, err, mu):
-    """Leave-one-species-out predictive of every tip: ``(mean, cov, logdens, logp)``."""
-    n = parent.shape[0]
+def value_and_grad_kernel(parent, lengths, y, observed, R, E, err, mu):
+    """Log-likelihood and its gradient.
+
+    Returns ``(logp, d_lengths, d_y, d_R, d_E, d_err, d_mu)``; the gradients
+    with respect to the symmetric matrices ``R`` and ``E`` are symmetric (the
+    derivative along a symmetric perturbation of an off-diagonal pair is
+    ``d[i, j] + d[j, i]``). Gradients are zero when ``logp`` is not finite.
+    """
+    k = y.shape[1]
+    R3, regime = _one_regime(R, parent.shape[0])
+    logp, d_lengths, d_y, d_R, d_E, d_err, d_mu = value_and_grad_regimes_kernel(
+        parent, lengths, y, observed, R3, regime, E, err, mu)
+    return logp, d_lengths, d_y, d_R.reshape((k, k)), d_E, d_err, d_mu
+
+
+@njit(**_JIT)
+def loo_regimes_kernel(parent, lengths, y, observed, R, regime, E, err, mu):
+    """:func:`loo_kernel` with ``R`` ``(n_regimes, k, k)``."""
     ntip = y.shape[0]
     k = y.shape[1]
     loo_mean = np.full((ntip, k), np.nan)
@@ -1256,15 +1298,23 @@ def loo_kernel(parent, lengths, y, observed, R, E, err, mu):
     e2 = np.empty((0, k, k))
     e0 = np.empty(0)
     ek = np.empty((k, k))
+    eR = np.empty(R.shape)
     ev = np.empty(k)
-    logp = _run(parent, lengths, y, observed, R, E, err, mu, MODE_LOO, e0, e1, ek, ek,
-                e2, ev, loo_mean, loo_cov, loo_logdens, e1, e2)
+    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_LOO, e0, e1, eR,
+                ek, e2, ev, loo_mean, loo_cov, loo_logdens, e1, e2)
     return loo_mean, loo_cov, loo_logdens, logp
 
 
 @njit(**_JIT)
-def ancestral_kernel(parent, lengths, y, observed, R, E, err, mu):
-    """Posterior mean and covariance of every node's latent value: ``(mean, cov, logp)``."""
+def loo_kernel(parent, lengths, y, observed, R, E, err, mu):
+    """Leave-one-species-out predictive of every tip: ``(mean, cov, logdens, logp)``."""
+    R3, regime = _one_regime(R, parent.shape[0])
+    return loo_regimes_kernel(parent, lengths, y, observed, R3, regime, E, err, mu)
+
+
+@njit(**_JIT)
+def ancestral_regimes_kernel(parent, lengths, y, observed, R, regime, E, err, mu):
+    """:func:`ancestral_kernel` with ``R`` ``(n_regimes, k, k)``."""
     n = parent.shape[0]
     k = y.shape[1]
     anc_mean = np.full((n, k), np.nan)
@@ -1273,19 +1323,28 @@ def ancestral_kernel(parent, lengths, y, observed, R, E, err, mu):
     e2 = np.empty((0, k, k))
     e0 = np.empty(0)
     ek = np.empty((k, k))
+    eR = np.empty(R.shape)
     ev = np.empty(k)
-    logp = _run(parent, lengths, y, observed, R, E, err, mu, MODE_ANCESTRAL, e0, e1, ek,
-                ek, e2, ev, e1, e2, e0, anc_mean, anc_cov)
+    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_ANCESTRAL, e0,
+                e1, eR, ek, e2, ev, e1, e2, e0, anc_mean, anc_cov)
     return anc_mean, anc_cov, logp
 
 
 @njit(**_JIT)
-def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err, mu):
-    """Leave-one-species-out log densities for many parameter draws.
+def ancestral_kernel(parent, lengths, y, observed, R, E, err, mu):
+    """Posterior mean and covariance of every node's latent value: ``(mean, cov, logp)``."""
+    R3, regime = _one_regime(R, parent.shape[0])
+    return ancestral_regimes_kernel(parent, lengths, y, observed, R3, regime, E, err, mu)
 
-    ``lengths`` is (S_l, n_nodes), ``err`` (S_e, N, k, k) with S_l, S_e in {1, S};
-    ``R``, ``E`` are (S, k, k) and ``mu`` (S, k). Returns (S, N); a draw whose
-    likelihood cannot be evaluated gets NaN.
+
+@njit(**_JIT)
+def loo_logdens_draws_regimes_kernel(parent, lengths, y, observed, R, regime, E, err, mu):
+    """Leave-one-species-out log densities for many parameter draws, with regimes.
+
+    ``lengths`` is (S_l, n_nodes), ``regime`` (S_g, n_nodes) and ``err``
+    (S_e, N, k, k) with S_l, S_g, S_e in {1, S}; ``R`` is (S, n_regimes, k, k),
+    ``E`` (S, k, k) and ``mu`` (S, k). Returns (S, N); a draw whose likelihood
+    cannot be evaluated gets NaN.
     """
     S = R.shape[0]
     n = parent.shape[0]
@@ -1298,30 +1357,33 @@ def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err, mu):
     e2 = np.empty((0, k, k))
     e0 = np.empty(0)
     ek = np.empty((k, k))
+    eR = np.empty(R.shape[1:])
     ev = np.empty(k)
     if k == 2:
         Pm, Sq = _workspace2(n, ntip)
         for s in range(S):
             ln = lengths[s if lengths.shape[0] > 1 else 0]
+            rg = regime[s if regime.shape[0] > 1 else 0]
             evs = err[s if err.shape[0] > 1 else 0]
-            logp = _upward2(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq)
+            logp = _upward2(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq)
             if not np.isfinite(logp):
                 out[s, :] = np.nan
                 continue
-            _downward2(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq, MODE_LOO,
-                       e0, e1, ek, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
+            _downward2(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq,
+                       MODE_LOO, e0, e1, eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
         return out
     if k == 1:
         Pm, Sq = _workspace1(n, ntip)
         for s in range(S):
             ln = lengths[s if lengths.shape[0] > 1 else 0]
+            rg = regime[s if regime.shape[0] > 1 else 0]
             evs = err[s if err.shape[0] > 1 else 0]
-            logp = _upward1(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq)
+            logp = _upward1(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq)
             if not np.isfinite(logp):
                 out[s, :] = np.nan
                 continue
-            _downward1(parent, ln, y, observed, R[s], E[s], evs, mu[s], Pm, Sq, MODE_LOO,
-                       e0, e1, ek, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
+            _downward1(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq,
+                       MODE_LOO, e0, e1, eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
         return out
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
     sufJ = np.empty((n, k, k))
@@ -1330,12 +1392,30 @@ def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err, mu):
     P = np.empty((n, k, k))
     for s in range(S):
         ln = lengths[s if lengths.shape[0] > 1 else 0]
+        rg = regime[s if regime.shape[0] > 1 else 0]
         evs = err[s if err.shape[0] > 1 else 0]
-        logp = upward(parent, ln, y, observed, R[s], E[s], evs, mu[s], Jn, hn, Ju, hu, Js, hs)
+        logp = upward(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Jn, hn, Ju, hu,
+                      Js, hs)
         if not np.isfinite(logp):
             out[s, :] = np.nan
             continue
-        downward(parent, ln, y, observed, R[s], E[s], evs, mu[s], Jn, hn, Ju, hu, Js, hs,
-                 sufJ, sufh, m, P, MODE_LOO, e0, e1, ek, ek, e2, ev,
+        downward(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Jn, hn, Ju, hu, Js,
+                 hs, sufJ, sufh, m, P, MODE_LOO, e0, e1, eR, ek, e2, ev,
                  loo_mean, loo_cov, out[s], e1, e2)
     return out
+
+
+@njit(**_JIT)
+def loo_logdens_draws_kernel(parent, lengths, y, observed, R, E, err, mu):
+    """Leave-one-species-out log densities for many parameter draws.
+
+    ``lengths`` is (S_l, n_nodes), ``err`` (S_e, N, k, k) with S_l, S_e in {1, S};
+    ``R``, ``E`` are (S, k, k) and ``mu`` (S, k). Returns (S, N); a draw whose
+    likelihood cannot be evaluated gets NaN.
+    """
+    S = R.shape[0]
+    k = R.shape[1]
+    R4 = np.ascontiguousarray(R).reshape((S, 1, k, k))
+    regime = np.zeros((1, parent.shape[0]), np.int64)
+    return loo_logdens_draws_regimes_kernel(parent, lengths, y, observed, R4, regime, E,
+                                            err, mu)

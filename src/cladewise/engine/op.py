@@ -19,7 +19,7 @@ from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache
 
 from cladewise.engine import kernels
 
-__all__ = ["TreeLoglik", "tree_loglik"]
+__all__ = ["TreeLoglik", "TreeLoglikRegimes", "tree_loglik"]
 
 _FLOAT_INPUTS = (1, 2, 4, 5, 6, 7)  # lengths, y, R, E, err_cov, mu
 
@@ -102,10 +102,65 @@ class TreeLoglik(Op):
         return grads
 
 
+class TreeLoglikRegimes(Op):
+    """:class:`TreeLoglik` with one rate matrix per regime.
+
+    ``(parent, lengths, y, observed, R, regime, E, err_cov, mu) -> (logp, d_lengths,
+    d_y, d_R, d_E, d_err_cov, d_mu)`` with ``R`` ``(n_regimes, k, k)`` and ``regime``
+    an int vector giving each node's branch regime (data, like ``parent``).
+    """
+
+    __props__ = ()
+
+    def make_node(self, parent, lengths, y, observed, R, regime, E, err_cov, mu):
+        R = pt.as_tensor_variable(R).astype("float64")
+        # the other inputs are checked and converted as for one regime
+        base = _tree_loglik_op.make_node(parent, lengths, y, observed, R[0], E, err_cov, mu)
+        parent, lengths, y, observed, _, E, err_cov, mu = base.inputs
+        if R.ndim != 3:
+            raise TypeError(f"R must have 3 dimensions (regimes x k x k), got {R.ndim}")
+        regime = pt.as_tensor_variable(regime)
+        if regime.dtype != "int64":
+            regime = pt.cast(regime, "int64")
+        if regime.ndim != 1:
+            raise TypeError(f"regime must have 1 dimension, got {regime.ndim}")
+        inputs = [parent, lengths, y, observed, R, regime, E, err_cov, mu]
+        floats = (lengths, y, R, E, err_cov, mu)
+        outputs = [pt.scalar(dtype="float64")] + [v.type() for v in floats]
+        return Apply(self, inputs, outputs)
+
+    def perform(self, node, inputs, output_storage):
+        res = kernels.value_and_grad_regimes_kernel(*(np.ascontiguousarray(a) for a in inputs))
+        output_storage[0][0] = np.asarray(res[0], dtype=np.float64)
+        for i in range(1, 7):
+            output_storage[i][0] = res[i]
+
+    def infer_shape(self, fgraph, node, input_shapes):
+        return [()] + [input_shapes[i] for i in (1, 2, 4, 6, 7, 8)]
+
+    def grad(self, inputs, output_gradients):
+        g_logp = output_gradients[0]
+        outs = self(*inputs)
+        if any(not isinstance(g.type, DisconnectedType) for g in output_gradients[1:]):
+            return [grad_not_implemented(self, i, x) for i, x in enumerate(inputs)]
+        return [
+            grad_undefined(self, 0, inputs[0], "parent is integer tree data"),
+            g_logp * outs[1],
+            g_logp * outs[2],
+            grad_undefined(self, 3, inputs[3], "observed is boolean data"),
+            g_logp * outs[3],
+            grad_undefined(self, 5, inputs[5], "regime is integer tree data"),
+            g_logp * outs[4],
+            g_logp * outs[5],
+            g_logp * outs[6],
+        ]
+
+
 _tree_loglik_op = TreeLoglik()
+_tree_loglik_regimes_op = TreeLoglikRegimes()
 
 
-def tree_loglik(parent, lengths, y, observed, R, E, err_var, mu):
+def tree_loglik(parent, lengths, y, observed, R, E, err_var, mu, regime=None):
     """Log-likelihood of the tree model as a PyTensor scalar.
 
     Usable as ``pm.Potential("loglik", tree_loglik(...))``; differentiable with
@@ -117,12 +172,19 @@ def tree_loglik(parent, lengths, y, observed, R, E, err_var, mu):
     of ``y`` may hold any finite value (fill them with 0). Inputs are trusted:
     validate them once beforehand (e.g. with :func:`cladewise.engine.loglik`).
     Returns ``-inf`` when a tip's observation covariance is not positive definite.
+
+    With ``regime`` (an int vector, one entry per node, data like ``parent``) ``R``
+    is ``(n_regimes, k, k)`` and the branch above node ``v`` has covariance
+    ``lengths[v] * R[regime[v]]`` (multi-rate Brownian motion).
     """
     err_var = pt.as_tensor_variable(err_var).astype("float64")
     if err_var.ndim == 2:
         # diagonal error: the kernels read the same k x k layout either way
         k = err_var.shape[1]
         err_var = err_var[:, :, None] * pt.eye(k)[None, :, :]
+    if regime is not None:
+        return _tree_loglik_regimes_op(parent, lengths, y, observed, R, regime, E,
+                                       err_var, mu)[0]
     return _tree_loglik_op(parent, lengths, y, observed, R, E, err_var, mu)[0]
 
 
@@ -145,3 +207,25 @@ def _numba_funcify_tree_loglik(op, node, **kwargs):
         return np.array(logp), dl, dy, dR, dE, dev, dmu
 
     return tree_loglik_numba, 1
+
+
+@register_funcify_default_op_cache_key(TreeLoglikRegimes)
+def _numba_funcify_tree_loglik_regimes(op, node, **kwargs):
+    kernel = kernels.value_and_grad_regimes_kernel
+
+    @numba_basic.numba_njit
+    def tree_loglik_regimes_numba(parent, lengths, y, observed, R, regime, E, err_cov, mu):
+        logp, dl, dy, dR, dE, dev, dmu = kernel(
+            np.ascontiguousarray(parent),
+            np.ascontiguousarray(lengths),
+            np.ascontiguousarray(y),
+            np.ascontiguousarray(observed),
+            np.ascontiguousarray(R),
+            np.ascontiguousarray(regime),
+            np.ascontiguousarray(E),
+            np.ascontiguousarray(err_cov),
+            np.ascontiguousarray(mu),
+        )
+        return np.array(logp), dl, dy, dR, dE, dev, dmu
+
+    return tree_loglik_regimes_numba, 1
