@@ -20,7 +20,7 @@ import warnings
 from typing import Sequence
 
 from cladewise import __version__
-from cladewise.cli import check, compare, fit, grid, power, report, signal, simulate
+from cladewise.cli import cache, check, compare, fit, grid, power, report, signal, simulate
 from cladewise.cli.common import Command, command_line
 from cladewise.errors import FitError, InputError
 
@@ -36,6 +36,7 @@ COMMANDS: tuple[Command, ...] = (
     compare.COMMAND,
     grid.COMMAND,
     power.COMMAND,
+    cache.COMMAND,
 )
 
 #: what an interrupt leaves behind, for commands that keep something
@@ -90,6 +91,20 @@ def _silence_stdout() -> None:
         pass  # stdout is not a real file (e.g. captured by a test runner)
 
 
+def _show_library_log() -> None:
+    """Show the library's INFO messages (what is compiling and why) on stderr, once."""
+    import logging
+
+    log = logging.getLogger("cladewise")
+    if not any(getattr(h, "_cladewise_cli", False) for h in log.handlers):
+        handler = logging.StreamHandler(sys.stderr)
+        handler.setFormatter(logging.Formatter("cladewise: %(message)s"))
+        handler._cladewise_cli = True  # type: ignore[attr-defined]
+        log.addHandler(handler)
+    log.setLevel(logging.INFO)
+    log.propagate = False
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     # PyTensor warns at import that no BLAS is linked; sampling runs through numba
@@ -110,6 +125,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             parser.print_help(sys.stderr)
             return 2
         args.command_line = command_line(argv)  # recorded beside results
+        _show_library_log()
         try:
             status = int(args._run(args))
         except (InputError, FitError) as exc:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from cladewise.engine import kernels
+from cladewise.engine import entries
 from cladewise.errors import InputError
 
 __all__ = [
@@ -178,6 +178,26 @@ def _check_tips(parent, lengths, observed, E, err) -> None:
             )
 
 
+def _call(task: str, args: tuple, with_regime: bool):
+    """Run ``task`` on validated arguments with the kernels made for this trait count.
+
+    Only the path for this k is compiled (:func:`cladewise.engine.entries.kernel_for`);
+    without regimes, ``R`` becomes one regime.
+    """
+    if with_regime:
+        parent, lengths, y, observed, R, regime, E, err, mu = args
+    else:
+        parent, lengths, y, observed, R, E, err, mu = args
+        if task == "loo_logdens_draws":
+            R = R[:, None]
+            regime = np.zeros((1, parent.shape[0]), np.int64)
+        else:
+            R = R[None]
+            regime = np.zeros(parent.shape[0], np.int64)
+    fn, extra = entries.kernel_for(task, y.shape[1])
+    return fn(parent, lengths, y, observed, np.ascontiguousarray(R), regime, E, err, mu, *extra)
+
+
 def loglik(parent, lengths, y, observed, R, E, err_var, mu, *, regime=None) -> float:
     """Log-likelihood of the observed cells, computed in O(N k^3).
 
@@ -210,9 +230,7 @@ def loglik(parent, lengths, y, observed, R, E, err_var, mu, *, regime=None) -> f
     float
     """
     args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu, regime=regime)
-    if regime is not None:
-        return float(kernels.loglik_regimes_kernel(*args))
-    return float(kernels.loglik_kernel(*args))
+    return float(_call("loglik", args, regime is not None))
 
 
 def loglik_and_grad(
@@ -235,9 +253,9 @@ def loglik_and_grad(
     """
     args, diagonal = _prepare(parent, lengths, y, observed, R, E, err_var, mu,
                               regime=regime)
-    kernel = kernels.value_and_grad_kernel if regime is None else (
-        kernels.value_and_grad_regimes_kernel)
-    logp, dl, dy, dR, dE, dev, dmu = kernel(*args)
+    logp, dl, dy, dR, dE, dev, dmu = _call("value_and_grad", args, regime is not None)
+    if regime is None:
+        dR = dR[0]
     if diagonal:
         dev = np.ascontiguousarray(np.diagonal(dev, axis1=1, axis2=2))
     grad = {"lengths": dl, "y": dy, "R": dR, "E": dE, "err_var": dev, "mu": dmu}
@@ -253,8 +271,7 @@ def loo_conditionals(
     ``cov (N, k, k)``. ``regime``: see :func:`loglik`.
     """
     args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu, regime=regime)
-    kernel = kernels.loo_kernel if regime is None else kernels.loo_regimes_kernel
-    mean, cov, _, _ = kernel(*args)
+    mean, cov, _, _ = _call("loo", args, regime is not None)
     return mean, cov
 
 
@@ -267,8 +284,7 @@ def loo_logdensity(
     :func:`loglik`.
     """
     args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu, regime=regime)
-    kernel = kernels.loo_kernel if regime is None else kernels.loo_regimes_kernel
-    return kernel(*args)[2]
+    return _call("loo", args, regime is not None)[2]
 
 
 def loo_logdensity_draws(
@@ -309,9 +325,8 @@ def loo_logdensity_draws(
     if regime is not None:
         if regime.shape[0] not in (1, S):
             raise InputError(f"regime has {regime.shape[0]} rows but R has {S} draws")
-        return kernels.loo_logdens_draws_regimes_kernel(
-            parent, lengths2, y, observed, R, regime, E, err4, mu)
-    return kernels.loo_logdens_draws_kernel(parent, lengths2, y, observed, R, E, err4, mu)
+        return _call("loo_logdens_draws", (parent, lengths2, y, observed, R, regime, E, err4, mu), True)
+    return _call("loo_logdens_draws", (parent, lengths2, y, observed, R, E, err4, mu), False)
 
 
 def ancestral_states(
@@ -324,6 +339,5 @@ def ancestral_states(
     :func:`loglik`.
     """
     args, _ = _prepare(parent, lengths, y, observed, R, E, err_var, mu, regime=regime)
-    kernel = kernels.ancestral_kernel if regime is None else kernels.ancestral_regimes_kernel
-    mean, cov, _ = kernel(*args)
+    mean, cov, _ = _call("ancestral", args, regime is not None)
     return mean, cov

@@ -9,6 +9,10 @@ optimisation evaluates the kernel once per logp-and-gradient evaluation. The tre
 
 from __future__ import annotations
 
+import functools
+import hashlib
+from pathlib import Path
+
 import numpy as np
 import pytensor.tensor as pt
 from pytensor.gradient import DisconnectedType, grad_not_implemented, grad_undefined
@@ -17,7 +21,7 @@ from pytensor.graph.op import Op
 from pytensor.link.numba.dispatch import basic as numba_basic
 from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache_key
 
-from cladewise.engine import kernels
+from cladewise.engine import entries, kernels
 
 __all__ = ["TreeLoglik", "TreeLoglikRegimes", "tree_loglik"]
 
@@ -32,9 +36,16 @@ class TreeLoglik(Op):
     ``(N, k, k)``; :func:`tree_loglik` builds it from variances when the error is
     diagonal. Unobserved cells of ``y`` may hold any finite value; they are ignored,
     as are the rows and columns of ``err_cov`` that belong to them.
+
+    ``k`` (the trait count, when known when the graph is built) selects the kernels
+    of that k only (:func:`cladewise.engine.entries.kernel_for`), so a model
+    compiles just the path it uses; ``None`` takes the kernels that serve any k.
     """
 
-    __props__ = ()
+    __props__ = ("k",)
+
+    def __init__(self, k: int | None = None):
+        self.k = None if k is None else int(k)
 
     def make_node(self, parent, lengths, y, observed, R, E, err_cov, mu):
         parent = pt.as_tensor_variable(parent)
@@ -64,20 +75,13 @@ class TreeLoglik(Op):
         return Apply(self, inputs, outputs)
 
     def perform(self, node, inputs, output_storage):
-        parent, lengths, y, observed, R, E, err_cov, mu = inputs
-        res = kernels.value_and_grad_kernel(
-            np.ascontiguousarray(parent),
-            np.ascontiguousarray(lengths),
-            np.ascontiguousarray(y),
-            np.ascontiguousarray(observed),
-            np.ascontiguousarray(R),
-            np.ascontiguousarray(E),
-            np.ascontiguousarray(err_cov),
-            np.ascontiguousarray(mu),
-        )
+        parent, lengths, y, observed, R, E, err_cov, mu = (np.ascontiguousarray(a) for a in inputs)
+        fn, extra = entries.kernel_for("value_and_grad", y.shape[1])
+        res = fn(parent, lengths, y, observed, np.ascontiguousarray(R[None]),
+                 np.zeros(parent.shape[0], np.int64), E, err_cov, mu, *extra)
         output_storage[0][0] = np.asarray(res[0], dtype=np.float64)
         for i in range(1, 7):
-            output_storage[i][0] = res[i]
+            output_storage[i][0] = res[i][0] if i == 3 else res[i]
 
     def infer_shape(self, fgraph, node, input_shapes):
         return [()] + [input_shapes[i] for i in _FLOAT_INPUTS]
@@ -108,9 +112,13 @@ class TreeLoglikRegimes(Op):
     ``(parent, lengths, y, observed, R, regime, E, err_cov, mu) -> (logp, d_lengths,
     d_y, d_R, d_E, d_err_cov, d_mu)`` with ``R`` ``(n_regimes, k, k)`` and ``regime``
     an int vector giving each node's branch regime (data, like ``parent``).
+    ``k``: as for :class:`TreeLoglik`.
     """
 
-    __props__ = ()
+    __props__ = ("k",)
+
+    def __init__(self, k: int | None = None):
+        self.k = None if k is None else int(k)
 
     def make_node(self, parent, lengths, y, observed, R, regime, E, err_cov, mu):
         R = pt.as_tensor_variable(R).astype("float64")
@@ -130,7 +138,9 @@ class TreeLoglikRegimes(Op):
         return Apply(self, inputs, outputs)
 
     def perform(self, node, inputs, output_storage):
-        res = kernels.value_and_grad_regimes_kernel(*(np.ascontiguousarray(a) for a in inputs))
+        args = [np.ascontiguousarray(a) for a in inputs]
+        fn, extra = entries.kernel_for("value_and_grad", args[2].shape[1])
+        res = fn(*args, *extra)
         output_storage[0][0] = np.asarray(res[0], dtype=np.float64)
         for i in range(1, 7):
             output_storage[i][0] = res[i]
@@ -182,14 +192,48 @@ def tree_loglik(parent, lengths, y, observed, R, E, err_var, mu, regime=None):
         # diagonal error: the kernels read the same k x k layout either way
         k = err_var.shape[1]
         err_var = err_var[:, :, None] * pt.eye(k)[None, :, :]
+    k = _static_k(y, R, mu)
     if regime is not None:
-        return _tree_loglik_regimes_op(parent, lengths, y, observed, R, regime, E,
-                                       err_var, mu)[0]
-    return _tree_loglik_op(parent, lengths, y, observed, R, E, err_var, mu)[0]
+        return TreeLoglikRegimes(k)(parent, lengths, y, observed, R, regime, E,
+                                    err_var, mu)[0]
+    return TreeLoglik(k)(parent, lengths, y, observed, R, E, err_var, mu)[0]
+
+
+def _static_k(y, R, mu) -> int | None:
+    """The trait count if the graph fixes it (static shapes or a shared value), else None."""
+    for v, axis in ((y, 1), (mu, -1), (R, -1)):
+        try:
+            t = pt.as_tensor_variable(v)
+        except (TypeError, ValueError):
+            continue
+        if t.type.shape[axis] is not None:
+            return int(t.type.shape[axis])
+    get = getattr(y, "get_value", None)
+    if get is not None:
+        value = np.asarray(get())
+        if value.ndim == 2:
+            return int(value.shape[1])
+    return None
+
+
+@functools.lru_cache(maxsize=1)
+def engine_version() -> int:
+    """A number that changes whenever any source file of the engine changes.
+
+    PyTensor keys its on-disk numba cache of the Op by the Op's type, properties and
+    this number, so an edited kernel is compiled afresh instead of loaded stale.
+    """
+    h = hashlib.sha256()
+    for f in sorted(Path(__file__).parent.glob("*.py")):
+        h.update(f.name.encode())
+        h.update(f.read_bytes())
+    return int(h.hexdigest()[:15], 16)
 
 
 @register_funcify_default_op_cache_key(TreeLoglik)
 def _numba_funcify_tree_loglik(op, node, **kwargs):
+    if op.k is not None:
+        return _funcify_for_k(op.k, regimes=False), engine_version()
     kernel = kernels.value_and_grad_kernel
 
     @numba_basic.numba_njit
@@ -206,11 +250,13 @@ def _numba_funcify_tree_loglik(op, node, **kwargs):
         )
         return np.array(logp), dl, dy, dR, dE, dev, dmu
 
-    return tree_loglik_numba, 1
+    return tree_loglik_numba, engine_version()
 
 
 @register_funcify_default_op_cache_key(TreeLoglikRegimes)
 def _numba_funcify_tree_loglik_regimes(op, node, **kwargs):
+    if op.k is not None:
+        return _funcify_for_k(op.k, regimes=True), engine_version()
     kernel = kernels.value_and_grad_regimes_kernel
 
     @numba_basic.numba_njit
@@ -228,4 +274,42 @@ def _numba_funcify_tree_loglik_regimes(op, node, **kwargs):
         )
         return np.array(logp), dl, dy, dR, dE, dev, dmu
 
-    return tree_loglik_regimes_numba, 1
+    return tree_loglik_regimes_numba, engine_version()
+
+
+def _funcify_for_k(k: int, regimes: bool):
+    """numba implementation calling only the kernels of ``k`` traits."""
+    fn, extra = entries.kernel_for("value_and_grad", k)
+    c = np.ascontiguousarray
+    if extra:
+        kt = extra[0]  # compile-time trait count, read by the k = 3..6 kernels
+
+        @numba_basic.numba_njit
+        def call(parent, lengths, y, observed, R3, regime, E, err_cov, mu):
+            if y.shape[1] != k:
+                raise ValueError("tree likelihood compiled for another number of traits")
+            return fn(c(parent), c(lengths), c(y), c(observed), R3, regime, c(E), c(err_cov), c(mu), kt)
+    else:
+        @numba_basic.numba_njit
+        def call(parent, lengths, y, observed, R3, regime, E, err_cov, mu):
+            if y.shape[1] != k:
+                raise ValueError("tree likelihood compiled for another number of traits")
+            return fn(c(parent), c(lengths), c(y), c(observed), R3, regime, c(E), c(err_cov), c(mu))
+
+    if regimes:
+        @numba_basic.numba_njit
+        def tree_loglik_regimes_k(parent, lengths, y, observed, R, regime, E, err_cov, mu):
+            logp, dl, dy, dR, dE, dev, dmu = call(parent, lengths, y, observed, c(R), c(regime),
+                                                  E, err_cov, mu)
+            return np.array(logp), dl, dy, dR, dE, dev, dmu
+
+        return tree_loglik_regimes_k
+
+    @numba_basic.numba_njit
+    def tree_loglik_k(parent, lengths, y, observed, R, E, err_cov, mu):
+        R3 = c(R).reshape((1, k, k))
+        regime = np.zeros(parent.shape[0], np.int64)
+        logp, dl, dy, dR, dE, dev, dmu = call(parent, lengths, y, observed, R3, regime, E, err_cov, mu)
+        return np.array(logp), dl, dy, dR[0], dE, dev, dmu
+
+    return tree_loglik_k

@@ -45,6 +45,7 @@ from __future__ import annotations
 import ctypes
 import hashlib
 import json
+import logging
 import os
 import pickle
 import re
@@ -542,11 +543,11 @@ def compile_cached(
     info = {} if info is None else info
     info.clear()
 
-    def announce(why: str) -> None:
-        if on_compile is not None:
-            on_compile(f"Compiling the model for nutpie ({why}); this takes about half a "
-                       "minute, or a few minutes on the very first run while numba compiles "
-                       f"the likelihood engine. Compiled models are kept in {compile_cache_dir()}.")
+    def announce(why: str) -> None:  # logged on the "cladewise" logger (the command line shows it)
+        msg = (f"compiling the model for the sampler ({why}); about half a minute. Compiled "
+               f"models are kept in {compile_cache_dir()} ('cladewise cache' shows or clears them).")
+        logging.getLogger("cladewise").info(msg)
+        on_compile(msg) if on_compile is not None else None
 
     def plain(reason: str) -> Any:
         announce(reason)

@@ -208,15 +208,18 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
     from cladewise.model.simulate import simulate_traits
     from cladewise.model.within_species import draw_errors
 
-    d, (nc, nd) = engine_draws(built, idata, engine)
+    post = idata.posterior
+    nc, nd = int(post.sizes["chain"]), int(post.sizes["draw"])
     rng = np.random.default_rng(seed)
     total = nc * nd
     pick = np.sort(rng.choice(total, size=min(n_draws, total), replace=False))
+    # only the picked draws: per-draw inputs are tree-sized
+    d, _ = (engine or EngineDraws(built)).draws(idata, pick)
     tree = built.data.tree
     n, k = built.observed.shape
     out = np.empty((len(pick), n, k))
     is_regression = built.spec.kind == "regression"
-    for a, s in enumerate(pick):
+    for s in range(len(pick)):  # d holds the picked draws, in order
         t = tree.with_lengths(d["lengths"][s])
         mu = d["mu"][s]
         painting = getattr(built, "painting", None)
@@ -233,7 +236,7 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
             # residual + fitted value: y = X beta + e
             resid = np.where(built.observed, mu + D * (d["y"][s] - mu), 0.0)
             x = x + np.where(built.observed, built.y, 0.0) - resid
-        out[a] = x
+        out[s] = x
     if built.discrete is not None:  # liabilities -> states by the draw's thresholds
         from cladewise.evaluation.discrete import draw_cuts, states_from_liabilities
 

@@ -20,6 +20,7 @@ __all__ = ["starting_point_problems", "check_starting_point", "likely_causes", "
 _LARGE = 1e6
 _SMALL = 1e-6
 _MODE = "FAST_COMPILE"
+_PYTHON_MODE_MAX_NODES = 20_000  # above: numba mode (see starting_point_problems)
 # beyond these the model's numbers lose all precision (squares overflow or vanish in
 # float64) even when the starting point happens to be finite: refused outright
 _HARD_LARGE = 1e100
@@ -114,11 +115,14 @@ def starting_point_problems(built: Any, tree_values: Sequence[dict[str, np.ndarr
         return scale
     model = built.model
     point = model.initial_point()
+    # Python-mode functions: a C compile would cost minutes for one evaluation. But
+    # Python mode runs some elementwise products one element at a time (~50 us each):
+    # for big trees numba-compiled functions (cached on disk by PyTensor) are faster.
+    mode = _MODE if built.data.tree.n_nodes <= _PYTHON_MODE_MAX_NODES else "NUMBA"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        # Python-mode functions: a C compile would cost minutes for one evaluation
-        logp_fn = model.compile_logp(mode=_MODE)
-        dlogp_fn = model.compile_dlogp(mode=_MODE)
+        logp_fn = model.compile_logp(mode=mode)
+        dlogp_fn = model.compile_dlogp(mode=mode)
         terms_fn = model.compile_fn(model.logp(sum=False), point_fn=True, mode=_MODE)
     sets = [("", None)]
     if tree_values:
@@ -154,6 +158,10 @@ def starting_point_problems(built: Any, tree_values: Sequence[dict[str, np.ndarr
 
 def check_starting_point(built: Any, tree_values: Sequence[dict[str, np.ndarray]] | None = None) -> None:
     """Raise :class:`InputError` naming the likely cause when sampling cannot start."""
+    if getattr(built, "likelihood", "tree") == "tree":
+        from cladewise.inference.engine_cache import prepare_engine
+
+        prepare_engine(built.observed.shape[1])  # compiles this k's kernels only, announced in the log
     problems = starting_point_problems(built, tree_values)
     if problems and problems == scale_problems(built):
         raise InputError("the data cannot be analysed at this scale: " + "; ".join(problems) + ".")

@@ -285,10 +285,18 @@ def contrasts_plot(view: FitView):
     return fig, cap
 
 
+#: above this many species the report leaves the tree figure out (with a note)
+TREE_FIGURE_MAX = 20_000
+
+
 def tree_figure(view: FitView, compact: bool | None = None):
     """The tree with the trait values beside the tips."""
     if view.tree is None:
         raise Skip("the tree is not stored in the fit folder")
+    if view.tree.n_tips > TREE_FIGURE_MAX:
+        # hundreds of thousands of line segments: an unreadable picture and a huge file
+        raise Skip(f"the tree has {view.tree.n_tips} species, more than {TREE_FIGURE_MAX} cannot be drawn "
+                   "legibly; the tree facts are in the data section")
     vals, names = view.y, list(view.traits)
     if view.kind == "regression" and view.design is not None and vals is not None:
         extra = [c for c in view.design.columns if str(c).lower() != "intercept"]
@@ -345,6 +353,27 @@ def pareto_k_plot(view: FitView):
     return fig, cap
 
 
+_EXACT_KDE_MAX = 2_000
+
+
+def _density(x: np.ndarray, grid: np.ndarray) -> np.ndarray:
+    """Gaussian kernel density of ``x`` on the even ``grid`` (Scott's bandwidth, as scipy).
+
+    Up to a few thousand values scipy's exact ``gaussian_kde``; above, the binned
+    estimate (counts on the grid convolved with the kernel; Silverman 1982, Appl.
+    Stat. 31:93), which costs O(len(x)) instead of O(len(x) * len(grid)).
+    """
+    if x.size <= _EXACT_KDE_MAX:
+        return stats.gaussian_kde(x)(grid)
+    bw = float(np.std(x, ddof=1)) * x.size ** (-0.2)
+    step = float(grid[1] - grid[0])
+    counts, _ = np.histogram(x, bins=grid.size, range=(grid[0] - step / 2, grid[-1] + step / 2))
+    half = min(grid.size, int(np.ceil(4 * bw / step)))
+    kern = np.exp(-0.5 * (np.arange(-half, half + 1) * step / bw) ** 2)
+    dens = np.convolve(counts, kern)[half:half + grid.size]
+    return dens / (x.size * bw * np.sqrt(2 * np.pi))
+
+
 def predictive_check(view: FitView, max_lines: int = 60):
     """Observed distribution of each trait against replicated data sets."""
     if not view.has("posterior_predictive") or "y_rep" not in view.idata.posterior_predictive:
@@ -369,10 +398,10 @@ def predictive_check(view: FitView, max_lines: int = 60):
         grid = np.linspace(lo, hi, 200)
         for r, rep in enumerate(reps):
             if np.ptp(rep) > 0:
-                ax.plot(grid, stats.gaussian_kde(rep)(grid), color=OKABE_ITO["sky"], linewidth=0.6,
+                ax.plot(grid, _density(rep, grid), color=OKABE_ITO["sky"], linewidth=0.6,
                         alpha=0.35, linestyle="-", label="replicated data" if r == 0 else None)
         if np.ptp(o) > 0:
-            ax.plot(grid, stats.gaussian_kde(o)(grid), color="black", linewidth=2, linestyle="--",
+            ax.plot(grid, _density(o, grid), color="black", linewidth=2, linestyle="--",
                     label="observed")
         ax.set_title(view.traits[j] if j < len(view.traits) else f"trait {j + 1}")
         ax.set_yticks([])
