@@ -132,9 +132,9 @@ def main() -> None:
     compiled = sum(1 for i in range(args.workers) if any((home / f"worker{i}" / "cache" / "compiled").glob("*/meta.json")))
     print()
     print(f"{'fits':>5} {'workers':>7} {'compile s':>9} {'fit s':>6} {'reference s':>11} {'wall s':>7} "
-          f"{'wall/ref':>8} {'done':>5} {'per-fit s (median)':>18}")
+          f"{'wall/ref':>8} {'wall/(fits x fit)':>17} {'done':>5} {'per-fit s (median)':>18}")
     print(f"{args.fits:>5} {args.workers:>7} {t_compile:>9.1f} {t_fit:>6.2f} {ref:>11.1f} {wall:>7.1f} "
-          f"{wall / ref:>8.2f} {n_done:>5} {table['seconds'].median():>18.2f}")
+          f"{wall / ref:>8.2f} {wall / (args.fits * t_fit):>17.2f} {n_done:>5} {table['seconds'].median():>18.2f}")
     print(f"\nspec {args.spec}, {args.chains} chains x {args.draws} draws (+{args.tune} tuning). "
           f"reference = fits x one fit + workers x one compile (serial, in this process); "
           f"target wall/ref <= 1.3. "

@@ -79,8 +79,6 @@ _LOCK = threading.Lock()
 
 
 # --------------------------------------------------------------------------- folders
-
-
 def compile_cache_dir() -> Path:
     """The folder holding compiled models (see the module docstring)."""
     root = os.environ.get("CLADEWISE_CACHE_DIR")
@@ -165,8 +163,6 @@ def prune_compile_cache(max_bytes: int | None = None, keep: str | None = None) -
 
 
 # --------------------------------------------------------------------------- keys
-
-
 def _sha(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
@@ -216,8 +212,6 @@ def _graph_key(fn: Any) -> str | None:
 
 
 # --------------------------------------------------------------------------- numba glue
-
-
 class _EntryCache:
     """A numba cache object for one ``CFunc``: loads from / records into memory.
 
@@ -559,6 +553,8 @@ def compile_cached(
     if os.environ.get("CLADEWISE_COMPILE_CACHE", "1").strip().lower() in ("0", "no", "false", "off"):
         return plain("CLADEWISE_COMPILE_CACHE is off")
     try:
+        from cladewise.inference import numba_ops  # noqa: F401  (numba versions of object-mode Ops)
+
         prep = _prepare(model)
         key, desc = _key(prep)
     except Exception as err:  # noqa: BLE001 - a real model error is raised again by nutpie
