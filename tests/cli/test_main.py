@@ -32,7 +32,7 @@ def test_table_lists_every_command_module():
             if isinstance(node, ast.Assign) and any(getattr(t, "id", None) == "COMMAND" for t in node.targets):
                 defined.add(path.stem)
     assert defined == {c.run.__module__.rsplit(".", 1)[1] for c in COMMANDS}
-    assert [c.name for c in COMMANDS] == ["check", "fit", "signal", "simulate", "report", "compare", "grid", "power"]
+    assert [c.name for c in COMMANDS] == ["check", "fit", "signal", "simulate", "report", "compare", "grid", "power", "cache"]
 
 
 @pytest.mark.parametrize("command", [c for c in COMMANDS], ids=lambda c: c.name)
