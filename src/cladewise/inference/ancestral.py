@@ -365,7 +365,16 @@ def reconstruct(
         notes.append(f"{bad} of {S} draws gave no finite ancestral values and were left out")
     ok = np.isfinite(node_draws[:, 0, 0]) if n_int else np.ones(S, bool)
     traits = list(built.traits)
-    trait_names = [f"{t} (residual)" for t in traits] if regression else traits
+    trait_names = [f"{t} (residual)" for t in traits] if regression else list(traits)
+    disc = getattr(built, "discrete", None)
+    if disc is not None:
+        # a discrete trait is reconstructed as its liability (threshold model); the
+        # probabilities of its states come from cladewise.evaluation.discrete
+        for j in disc.columns:
+            trait_names[j] = f"{traits[j]} (liability)"
+        notes.append("discrete traits are reconstructed and predicted on their liability scale; state "
+                     "probabilities: cladewise.evaluation.discrete.node_state_probabilities and "
+                     "state_probabilities")
     names_df = node_names(tree)
 
     def summary(draws, m, m2, shift):
