@@ -85,6 +85,8 @@ def prepare_traits(
     ou_root: str = "fixed",
     priors: dict[str, Any] | None = None,
     fixed: dict[str, float] | None = None,
+    discrete: dict[str, list[Any]] | None = None,
+    regimes: dict[str, Any] | None = None,
     species: str = "species",
     specimens: bool = False,
     log: Sequence[str] = (),
@@ -92,6 +94,7 @@ def prepare_traits(
     n_suffix: str = "_n",
     sd_suffix: str = "_sd",
     drop_unmatched: bool = False,
+    keep_tree_only: bool = False,
     sampler: str = "nutpie",
     chains: int = 4,
     draws: int = 1000,
@@ -113,7 +116,7 @@ def prepare_traits(
     from cladewise.pipeline import PreparedAnalysis
 
     data_args = dict(species=species, specimens=specimens, log=tuple(log), se_suffix=se_suffix, n_suffix=n_suffix,
-                     sd_suffix=sd_suffix, drop_unmatched=drop_unmatched)
+                     sd_suffix=sd_suffix, drop_unmatched=drop_unmatched, keep_tree_only=keep_tree_only)
     match, summary, data = _data(tree, table, data_args)
     _check_traits(match.traits, traits)
     if kind is None:
@@ -125,7 +128,8 @@ def prepare_traits(
         model["traits"] = list(traits)
     if formula is not None:
         model["formula"] = formula
-    for key, value in (("error_correlation", error_correlation), ("priors", priors), ("fixed", fixed)):
+    for key, value in (("error_correlation", error_correlation), ("priors", priors), ("fixed", fixed),
+                       ("discrete", discrete), ("regimes", regimes)):
         if value is not None:
             model[key] = value
     model_spec = ModelSpec.from_dict(model)
@@ -149,6 +153,8 @@ def fit_traits(
     ou_root: str = "fixed",
     priors: dict[str, Any] | None = None,
     fixed: dict[str, float] | None = None,
+    discrete: dict[str, list[Any]] | None = None,
+    regimes: dict[str, Any] | None = None,
     species: str = "species",
     specimens: bool = False,
     log: Sequence[str] = (),
@@ -156,6 +162,7 @@ def fit_traits(
     n_suffix: str = "_n",
     sd_suffix: str = "_sd",
     drop_unmatched: bool = False,
+    keep_tree_only: bool = False,
     sampler: str = "nutpie",
     chains: int = 4,
     draws: int = 1000,
@@ -163,6 +170,7 @@ def fit_traits(
     seed: int = 1,
     target_accept: float | None = None,
     progress: bool | None = None,
+    ancestral: bool | None = None,
 ):
     """Fit a model to a tree and a DataFrame, without a spec file.
 
@@ -182,12 +190,15 @@ def fit_traits(
     kind : {"correlated", "independent", "regression"}, optional
         Default: ``regression`` with a formula, ``correlated`` with two or more
         traits, ``independent`` with one.
-    evolution, measurement_error, species_covariance, error_correlation, ou_root, priors, fixed
+    evolution, measurement_error, species_covariance, error_correlation, ou_root, priors, fixed, discrete, regimes
         As the keys of a spec's ``[model]`` (:data:`cladewise.config.analysis.MODEL`).
-    species, specimens, log, se_suffix, n_suffix, sd_suffix, drop_unmatched
+    species, specimens, log, se_suffix, n_suffix, sd_suffix, drop_unmatched, keep_tree_only
         As the keys of a spec's ``[data]``.
     sampler, chains, draws, tune, seed, target_accept, progress
         As the keys of a spec's ``[sampling]``.
+    ancestral : bool, optional
+        Add ancestral values and predictions of missing cells, as ``cladewise fit``
+        does (default: up to :data:`cladewise.inference.ancestral.MAX_TIPS` species).
 
     Returns
     -------
@@ -203,11 +214,12 @@ def fit_traits(
         trait, species that do not match, a bad setting: each says what to fix.
     """
     from cladewise.inference.fit import fit
-    from cladewise.pipeline import environment
+    from cladewise.pipeline import add_ancestral, environment
 
-    args = {k: v for k, v in locals().items() if k not in ("fit", "environment")}
-    prep = prepare_traits(**args)
+    args = {k: v for k, v in locals().items() if k not in ("fit", "environment", "add_ancestral")}
+    prep = prepare_traits(**{k: v for k, v in args.items() if k != "ancestral"})
     result = fit(prep.model_data, prep.model_spec, prep.options)
+    add_ancestral(result, prep, ancestral, pooled=False)
     shown = {k: v for k, v in args.items() if k in ("tree", "table", "traits") or
              (v is not None and v != _DEFAULTS.get(k))}
     result.info["data_summary"] = prep.data_summary.to_dict()
@@ -272,5 +284,6 @@ _DEFAULTS = {
     "error_correlation": None, "ou_root": "fixed", "priors": None, "fixed": None, "species": "species",
     "specimens": False, "log": (), "se_suffix": "_se", "n_suffix": "_n", "sd_suffix": "_sd",
     "drop_unmatched": False, "sampler": "nutpie", "chains": 4, "draws": 1000, "tune": 1000, "seed": 1,
-    "target_accept": None, "progress": None,
+    "target_accept": None, "progress": None, "discrete": None, "regimes": None, "keep_tree_only": False,
+    "ancestral": None,
 }

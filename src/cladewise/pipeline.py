@@ -245,13 +245,14 @@ def fit_from_spec(
             f"interrupted: the draws made so far were saved to {out}, marked partial", partial=part, saved=target
         ) from None
     _describe_run(result, prep, command, pooled)
-    _add_ancestral(result, prep, ancestral, pooled)
+    add_ancestral(result, prep, ancestral, pooled)
     if target is not None:
         result.save(target, overwrite=overwrite, inputs=prep.input_paths)
     return result
 
 
-def _add_ancestral(result: FitResult, prep: PreparedAnalysis, ancestral: bool | None, pooled: bool) -> None:
+def add_ancestral(result: FitResult, prep: PreparedAnalysis, ancestral: bool | None, pooled: bool) -> None:
+    """Attach ancestral values and predictions of missing cells to a fit (``ancestral=None``: by size)."""
     from cladewise.inference.ancestral import MAX_TIPS, add_reconstruction
 
     n = prep.model_data.tree.n_tips
