@@ -17,8 +17,8 @@ errors); k = 4 at N = 10,000. Trees are random coalescent-like, scaled to height
 
 Run:  /work/venv/bin/python benchmarks/bench_speed.py [--cases demo n1000 n10000 n100000 k4]
       [--chains 4 --draws 1000 --tune 1000]
-The numba engine cache of the checkout is used as it is (see --first-run in
-docs for the fresh-install measurement: benchmarks/bench_first_run.py).
+The numba engine cache of the checkout is used as it is; the first run on a fresh
+install (empty numba cache too) is measured by ``benchmarks/bench_compile.py --first-run``.
 """
 
 from __future__ import annotations

@@ -36,3 +36,13 @@ def test_posdef_numba_matches_scipy_cholesky():
         assert bool(f(S)) == want
     assert seen == {True, False}
     assert not bool(f(np.array([[1.0, 2.0], [2.0, 1.0]])))  # eigenvalues 3 and -1
+
+
+def test_posdef_has_a_cache_key():
+    # without a numba version PyTensor runs the Op in object mode and returns no key,
+    # which makes every model holding it uncacheable
+    from pytensor.link.numba.dispatch.basic import numba_funcify_and_cache_key
+
+    node = matrix_pos_def(pt.dmatrix("x")).owner
+    _, key = numba_funcify_and_cache_key(node.op, node=node)
+    assert key is not None
