@@ -94,7 +94,7 @@ def cold(tmp_path_factory):
 def test_cold_compile_matches_pymc_and_is_stored(cold):
     cache, result = cold
     assert result["status"] == "miss"
-    assert len(result["said"]) == 1 and "Compiling" in result["said"][0]
+    assert len(result["said"]) == 1 and "compiling the model" in result["said"][0]
     assert_matches_pymc(result)
     entry = cache / "compiled" / result["key"]
     meta = json.loads((entry / "meta.json").read_text())

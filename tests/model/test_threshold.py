@@ -35,7 +35,7 @@ def star_tree(n: int) -> FlatTree:
 
 def data_for(tree, x, **text) -> ModelData:
     names = list(tree.tip_names)
-    return ModelData(tree, pd.DataFrame({"x": x}, index=names), text=pd.DataFrame(text, index=names))
+    return ModelData(tree, pd.DataFrame({"x": x}, index=names), extra=pd.DataFrame(text, index=names))
 
 
 # --------------------------------------------------------------------------- LKJ

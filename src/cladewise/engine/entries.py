@@ -20,21 +20,20 @@ from cladewise.engine.kernels import (
     MODE_ANCESTRAL,
     MODE_GRAD,
     MODE_LOO,
-    _downward1,
-    _downward2,
-    _upward1,
-    _upward2,
-    _workspace1,
-    _workspace2,
+    downward1,
+    downward2,
+    upward1,
+    upward2,
+    workspace1,
+    workspace2,
 )
 
 __all__ = ["TASKS", "kernel_for", "path_name"]
 
 _JIT = {"cache": True, "nogil": True}
-#: serve k = 3..6 by the compact kernels. Off until tests/engine/test_kernels_small.py
-#: has passed on this branch (it had not finished compiling when this was committed);
-#: the general kernels serve those k meanwhile.
-COMPACT_SMALL_K = False
+#: serve k = 3..6 by the compact kernels (checked equal to the general kernels and the
+#: dense reference by tests/engine/test_kernels_small.py); False: the general kernels
+COMPACT_SMALL_K = True
 #: what an entry point computes (the names of the general ``*_regimes_kernel``)
 TASKS = ("loglik", "value_and_grad", "loo", "ancestral", "loo_logdens_draws")
 
@@ -43,10 +42,10 @@ TASKS = ("loglik", "value_and_grad", "loo", "ancestral", "loo_logdens_draws")
 @njit(**_JIT)
 def _run_k1(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths, d_y, d_R,
             d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
-    Pm, Sq = _workspace1(parent.shape[0], y.shape[0])
-    logp = _upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    Pm, Sq = workspace1(parent.shape[0], y.shape[0])
+    logp = upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
     if np.isfinite(logp):
-        _downward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
+        downward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                    d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                    anc_mean, anc_cov)
     return logp
@@ -54,7 +53,7 @@ def _run_k1(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths
 
 @njit(**_JIT)
 def loglik_k1(parent, lengths, y, observed, R, regime, E, err, mu):
-    return _upward1(parent, lengths, y, observed, R, regime, E, err, mu,
+    return upward1(parent, lengths, y, observed, R, regime, E, err, mu,
                     np.empty((parent.shape[0] - y.shape[0], 2)), np.empty((0, 4)))
 
 
@@ -107,10 +106,10 @@ def loo_logdens_draws_k1(parent, lengths, y, observed, R, regime, E, err, mu):
 @njit(**_JIT)
 def _run_k2(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths, d_y, d_R,
             d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
-    Pm, Sq = _workspace2(parent.shape[0], y.shape[0])
-    logp = _upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    Pm, Sq = workspace2(parent.shape[0], y.shape[0])
+    logp = upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
     if np.isfinite(logp):
-        _downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
+        downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                    d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                    anc_mean, anc_cov)
     return logp
@@ -118,7 +117,7 @@ def _run_k2(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths
 
 @njit(**_JIT)
 def loglik_k2(parent, lengths, y, observed, R, regime, E, err, mu):
-    return _upward2(parent, lengths, y, observed, R, regime, E, err, mu,
+    return upward2(parent, lengths, y, observed, R, regime, E, err, mu,
                     np.empty((parent.shape[0] - y.shape[0], 5)), np.empty((0, 10)))
 
 

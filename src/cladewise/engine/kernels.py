@@ -51,17 +51,17 @@ from numba.extending import intrinsic
 _JIT = {"cache": True, "nogil": True}
 # small helpers are inlined: a call passing many arrays costs more than k x k algebra
 _INLINE = {"cache": True, "nogil": True, "inline": "always"}
-_LOG_2PI = math.log(2.0 * math.pi)
+LOG_2PI = math.log(2.0 * math.pi)
 
 MODE_GRAD = 1
 MODE_LOO = 2
 MODE_ANCESTRAL = 4
 # how many nodes ahead the k = 2 passes prefetch a parent's row
-_PREFETCH_AHEAD = 8
+PREFETCH_AHEAD = 8
 
 
 @intrinsic
-def _prefetch_row(typingctx, arr, i):
+def prefetch_row(typingctx, arr, i):
     """Ask the CPU to start loading row ``i`` of a C-contiguous 2-D array.
 
     A hint only (LLVM ``prefetch``): no effect on results. The passes read a
@@ -234,7 +234,7 @@ def chol_inv(K, q, W):
 
 # --------------------------------------------------------------------- the passes
 @njit(**_INLINE)
-def _observed_index(observed, i, idx):
+def observed_index(observed, i, idx):
     q = 0
     for j in range(observed.shape[1]):
         if observed[i, j]:
@@ -276,7 +276,7 @@ def upward(parent, lengths, y, observed, R, regime, E, err, mu, Jn, hn, Ju, hu, 
                 hv[i] = 0.0
                 for j in range(k):
                     Jv[i, j] = 0.0
-            q = _observed_index(observed, v, idx)
+            q = observed_index(observed, v, idx)
             if q > 0:
                 for a in range(q):
                     ia = idx[a]
@@ -295,7 +295,7 @@ def upward(parent, lengths, y, observed, R, regime, E, err, mu, Jn, hn, Ju, hu, 
                         Jv[idx[a], idx[b]] = W[a, b]
                     hv[idx[a]] = s
                     quad += s * y[v, idx[a]]
-                total += -0.5 * quad - 0.5 * logdet - 0.5 * q * _LOG_2PI
+                total += -0.5 * quad - 0.5 * logdet - 0.5 * q * LOG_2PI
         elif t == 0.0:
             for i in range(k):
                 hv[i] = hn[v, i]
@@ -373,7 +373,7 @@ def _tip_terms_py(c, t, y, observed, R, E, err, m, P, mode, idx, K, W, r, Wr,
             loo_mean[c, i] = mc[i]
             for j in range(k):
                 loo_cov[c, i, j] = Pc[i, j] + E[i, j] + 0.5 * (err[c, i, j] + err[c, j, i])
-    q = _observed_index(observed, c, idx)
+    q = observed_index(observed, c, idx)
     if q == 0:
         if mode & MODE_LOO:
             loo_logdens[c] = 0.0
@@ -399,7 +399,7 @@ def _tip_terms_py(c, t, y, observed, R, E, err, m, P, mode, idx, K, W, r, Wr,
         Wr[a] = s
         quad += s * r[a]
     if mode & MODE_LOO:
-        loo_logdens[c] = -0.5 * quad - 0.5 * logdet - 0.5 * q * _LOG_2PI
+        loo_logdens[c] = -0.5 * quad - 0.5 * logdet - 0.5 * q * LOG_2PI
     if mode & MODE_GRAD:
         tr = 0.0
         for a in range(q):
@@ -558,7 +558,7 @@ def downward(parent, lengths, y, observed, R, regime, E, err, mu, Jn, hn, Ju, hu
 # is read or written at the parent sits in one compact internal-node array ``Pm``
 # and the per-node data read in node order in another, ``Sq``.
 @njit(**_JIT)
-def _workspace2(n, ntip):
+def workspace2(n, ntip):
     """``Pm`` (one row of 10 per internal node) and ``Sq`` (one row of 10 per node)."""
     return np.empty((n - ntip, 10)), np.empty((n, 10))
 
@@ -583,8 +583,8 @@ def _absorb2(j00, j01, j11, h0, h1, v00, v01, v10, v11, m0, m1):
 
 
 @njit(**_JIT)
-def _upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
-    """:func:`upward` for k = 2 on the workspace of :func:`_workspace2`.
+def upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
+    """:func:`upward` for k = 2 on the workspace of :func:`workspace2`.
 
     ``Pm[v - N, 0:5]`` accumulates the message at internal node ``v`` (sum of its
     children's); ``Sq[v, 0:5]`` receives the message node ``v`` pushes across its
@@ -637,21 +637,21 @@ def _upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
                 y1 = y[v, 1]
                 h0 = J00 * y0 + J01 * y1
                 h1 = J01 * y0 + J11 * y1
-                total += -0.5 * (h0 * y0 + h1 * y1) - 0.5 * math.log(det) - _LOG_2PI
+                total += -0.5 * (h0 * y0 + h1 * y1) - 0.5 * math.log(det) - LOG_2PI
             elif o0:
                 k00 = t * r00 + e00 + err[v, 0, 0]
                 if not k00 > 0.0:
                     return -np.inf
                 J00 = 1.0 / k00
                 h0 = J00 * y[v, 0]
-                total += -0.5 * h0 * y[v, 0] - 0.5 * math.log(k00) - 0.5 * _LOG_2PI
+                total += -0.5 * h0 * y[v, 0] - 0.5 * math.log(k00) - 0.5 * LOG_2PI
             elif o1:
                 k11 = t * r11 + e11 + err[v, 1, 1]
                 if not k11 > 0.0:
                     return -np.inf
                 J11 = 1.0 / k11
                 h1 = J11 * y[v, 1]
-                total += -0.5 * h1 * y[v, 1] - 0.5 * math.log(k11) - 0.5 * _LOG_2PI
+                total += -0.5 * h1 * y[v, 1] - 0.5 * math.log(k11) - 0.5 * LOG_2PI
         else:
             J00 = Pm[v - ntip, 0]
             J01 = Pm[v - ntip, 1]
@@ -669,8 +669,8 @@ def _upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
                 total += -0.5 * logdet + 0.5 * quad
                 h0 = g0
                 h1 = g1
-        if v + _PREFETCH_AHEAD < n - 1:
-            _prefetch_row(Pm, parent[v + _PREFETCH_AHEAD] - ntip)
+        if v + PREFETCH_AHEAD < n - 1:
+            prefetch_row(Pm, parent[v + PREFETCH_AHEAD] - ntip)
         p = parent[v] - ntip
         if store:
             Sq[v, 0] = J00
@@ -764,7 +764,7 @@ def _tips2(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths,
         a0 = w00 * r0 + w01 * r1
         a1 = w01 * r0 + w11 * r1
         if mode & MODE_LOO:
-            loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1) - 0.5 * logdet - 0.5 * q * _LOG_2PI
+            loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1) - 0.5 * logdet - 0.5 * q * LOG_2PI
         if mode & MODE_GRAD:
             t = lengths[c]
             rg = regime[c]
@@ -813,10 +813,10 @@ def _tips2(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths,
 
 
 @njit(**_JIT)
-def _downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
+def downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                anc_mean, anc_cov):
-    """:func:`downward` for k = 2 after :func:`_upward2`.
+    """:func:`downward` for k = 2 after :func:`upward2`.
 
     Internal nodes' terms are computed in the main loop, the tips' in a sequential
     sweep afterwards. ``Pm[v - N, 0:5]`` (the message at ``v``) is recycled, after
@@ -847,8 +847,8 @@ def _downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode
             q01 = 0.0
             q11 = 0.0
         else:
-            if c >= _PREFETCH_AHEAD:
-                _prefetch_row(Pm, parent[c - _PREFETCH_AHEAD] - ntip)
+            if c >= PREFETCH_AHEAD:
+                prefetch_row(Pm, parent[c - PREFETCH_AHEAD] - ntip)
             p = parent[c] - ntip
             # siblings' messages: those before c (from the upward pass) plus those
             # after c (suffix sums; children are visited in decreasing order), rather
@@ -948,7 +948,7 @@ def _downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode
 # k = 2 path, with scalars: a canonical message is ``[J, h]`` and a moment form
 # ``[m, P]``.
 @njit(**_JIT)
-def _workspace1(n, ntip):
+def workspace1(n, ntip):
     """``Pm`` (one row of 4 per internal node) and ``Sq`` (one row of 4 per node)."""
     return np.empty((n - ntip, 4)), np.empty((n, 4))
 
@@ -965,8 +965,8 @@ def _absorb1(j, h, v, m):
 
 
 @njit(**_JIT)
-def _upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
-    """:func:`upward` for k = 1 on the workspace of :func:`_workspace1`.
+def upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
+    """:func:`upward` for k = 1 on the workspace of :func:`workspace1`.
 
     ``Pm[v - N, 0:2]`` accumulates the message at internal node ``v``; ``Sq[v, 0:2]``
     receives the message node ``v`` pushes across its branch and ``Sq[v, 2:4]`` the
@@ -996,7 +996,7 @@ def _upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
                 J = 1.0 / kv
                 yv = y[v, 0]
                 h = J * yv
-                total += -0.5 * h * yv - 0.5 * math.log(kv) - 0.5 * _LOG_2PI
+                total += -0.5 * h * yv - 0.5 * math.log(kv) - 0.5 * LOG_2PI
         else:
             J = Pm[v - ntip, 0]
             h = Pm[v - ntip, 1]
@@ -1005,8 +1005,8 @@ def _upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
                 J, g, inv = _absorb1(J, h, vv, 0.0)
                 total += 0.5 * math.log(abs(inv)) + 0.5 * (vv * h) * g
                 h = g
-        if v + _PREFETCH_AHEAD < n - 1:
-            _prefetch_row(Pm, parent[v + _PREFETCH_AHEAD] - ntip)
+        if v + PREFETCH_AHEAD < n - 1:
+            prefetch_row(Pm, parent[v + PREFETCH_AHEAD] - ntip)
         p = parent[v] - ntip
         if store:
             Sq[v, 0] = J
@@ -1053,7 +1053,7 @@ def _tips1(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths,
         res = y[c, 0] - m
         a = w * res
         if mode & MODE_LOO:
-            loo_logdens[c] = -0.5 * (a * res) - 0.5 * logdet - 0.5 * _LOG_2PI
+            loo_logdens[c] = -0.5 * (a * res) - 0.5 * logdet - 0.5 * LOG_2PI
         if mode & MODE_GRAD:
             G = 0.5 * (a * a - w)
             rg = regime[c]
@@ -1075,12 +1075,12 @@ def _tips1(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths,
 
 
 @njit(**_JIT)
-def _downward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
+def downward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                anc_mean, anc_cov):
-    """:func:`downward` for k = 1 after :func:`_upward1`.
+    """:func:`downward` for k = 1 after :func:`upward1`.
 
-    Same scheme as :func:`_downward2`: ``Pm[v - N, 0:2]`` is recycled as the running
+    Same scheme as :func:`downward2`: ``Pm[v - N, 0:2]`` is recycled as the running
     sum of the messages of ``v``'s children visited so far; ``v``'s outside
     distribution ``[m, P]`` goes to ``Pm[v - N, 2:4]`` for an internal node and over
     its upward message in ``Sq[v, 0:2]`` for a tip.
@@ -1103,8 +1103,8 @@ def _downward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode
             nm = mu[0]
             q = 0.0
         else:
-            if c >= _PREFETCH_AHEAD:
-                _prefetch_row(Pm, parent[c - _PREFETCH_AHEAD] - ntip)
+            if c >= PREFETCH_AHEAD:
+                prefetch_row(Pm, parent[c - PREFETCH_AHEAD] - ntip)
             p = parent[c] - ntip
             # siblings' messages: before c (upward pass) plus after c (suffix sums)
             sJ = Sq[c, 2] + Pm[p, 0]
@@ -1184,10 +1184,10 @@ def loglik_regimes_kernel(parent, lengths, y, observed, R, regime, E, err, mu):
     n = parent.shape[0]
     k = y.shape[1]
     if k == 2:
-        return _upward2(parent, lengths, y, observed, R, regime, E, err, mu,
+        return upward2(parent, lengths, y, observed, R, regime, E, err, mu,
                         np.empty((n - y.shape[0], 5)), np.empty((0, 10)))
     if k == 1:
-        return _upward1(parent, lengths, y, observed, R, regime, E, err, mu,
+        return upward1(parent, lengths, y, observed, R, regime, E, err, mu,
                         np.empty((n - y.shape[0], 2)), np.empty((0, 4)))
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)
     return upward(parent, lengths, y, observed, R, regime, E, err, mu, Jn, hn, Ju, hu,
@@ -1207,20 +1207,20 @@ def _run(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths, d
     n = parent.shape[0]
     k = y.shape[1]
     if k == 2:
-        Pm, Sq = _workspace2(n, y.shape[0])
-        logp = _upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+        Pm, Sq = workspace2(n, y.shape[0])
+        logp = upward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
         if not np.isfinite(logp):
             return logp
-        _downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
+        downward2(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                    d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov,
                    loo_logdens, anc_mean, anc_cov)
         return logp
     if k == 1:
-        Pm, Sq = _workspace1(n, y.shape[0])
-        logp = _upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+        Pm, Sq = workspace1(n, y.shape[0])
+        logp = upward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
         if not np.isfinite(logp):
             return logp
-        _downward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
+        downward1(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                    d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov,
                    loo_logdens, anc_mean, anc_cov)
         return logp
@@ -1360,29 +1360,29 @@ def loo_logdens_draws_regimes_kernel(parent, lengths, y, observed, R, regime, E,
     eR = np.empty(R.shape[1:])
     ev = np.empty(k)
     if k == 2:
-        Pm, Sq = _workspace2(n, ntip)
+        Pm, Sq = workspace2(n, ntip)
         for s in range(S):
             ln = lengths[s if lengths.shape[0] > 1 else 0]
             rg = regime[s if regime.shape[0] > 1 else 0]
             evs = err[s if err.shape[0] > 1 else 0]
-            logp = _upward2(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq)
+            logp = upward2(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq)
             if not np.isfinite(logp):
                 out[s, :] = np.nan
                 continue
-            _downward2(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq,
+            downward2(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq,
                        MODE_LOO, e0, e1, eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
         return out
     if k == 1:
-        Pm, Sq = _workspace1(n, ntip)
+        Pm, Sq = workspace1(n, ntip)
         for s in range(S):
             ln = lengths[s if lengths.shape[0] > 1 else 0]
             rg = regime[s if regime.shape[0] > 1 else 0]
             evs = err[s if err.shape[0] > 1 else 0]
-            logp = _upward1(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq)
+            logp = upward1(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq)
             if not np.isfinite(logp):
                 out[s, :] = np.nan
                 continue
-            _downward1(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq,
+            downward1(parent, ln, y, observed, R[s], rg, E[s], evs, mu[s], Pm, Sq,
                        MODE_LOO, e0, e1, eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
         return out
     Jn, hn, Ju, hu, Js, hs = _workspace(n, k)

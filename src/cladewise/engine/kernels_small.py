@@ -28,13 +28,13 @@ import numpy as np
 from numba import njit
 
 from cladewise.engine.kernels import (
-    _LOG_2PI,
-    _PREFETCH_AHEAD,
+    LOG_2PI,
+    PREFETCH_AHEAD,
     MODE_ANCESTRAL,
     MODE_GRAD,
     MODE_LOO,
-    _observed_index,
-    _prefetch_row,
+    observed_index,
+    prefetch_row,
     absorb,
     chol_inv,
 )
@@ -96,7 +96,7 @@ def _upward(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, kt):
                 h[i] = 0.0
                 for j in range(k):
                     J[i, j] = 0.0
-            q = _observed_index(observed, v, idx)
+            q = observed_index(observed, v, idx)
             if q > 0:
                 for a in range(q):
                     ia = idx[a]
@@ -115,7 +115,7 @@ def _upward(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, kt):
                         J[idx[a], idx[b]] = W[a, b]
                     h[idx[a]] = s
                     quad += s * y[v, idx[a]]
-                total += -0.5 * quad - 0.5 * logdet - 0.5 * q * _LOG_2PI
+                total += -0.5 * quad - 0.5 * logdet - 0.5 * q * LOG_2PI
         else:
             w = v - ntip
             for i in range(k):
@@ -138,8 +138,8 @@ def _upward(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, kt):
                     h[i] = g[i]
                     for j in range(k):
                         J[i, j] = H[i, j]
-        if v + _PREFETCH_AHEAD < n - 1:
-            _prefetch_row(Pm, parent[v + _PREFETCH_AHEAD] - ntip)
+        if v + PREFETCH_AHEAD < n - 1:
+            prefetch_row(Pm, parent[v + PREFETCH_AHEAD] - ntip)
         p = parent[v] - ntip
         if store:
             for i in range(k):
@@ -195,7 +195,7 @@ def _tips(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths, 
                 loo_mean[c, i] = mc[i]
                 for j in range(k):
                     loo_cov[c, i, j] = Pc[i, j] + E[i, j] + 0.5 * (err[c, i, j] + err[c, j, i])
-        q = _observed_index(observed, c, idx)
+        q = observed_index(observed, c, idx)
         if q == 0:
             if mode & MODE_LOO:
                 loo_logdens[c] = 0.0
@@ -223,7 +223,7 @@ def _tips(parent, lengths, y, observed, R, regime, E, err, Sq, mode, d_lengths, 
             Wr[a] = s
             quad += s * r[a]
         if mode & MODE_LOO:
-            loo_logdens[c] = -0.5 * quad - 0.5 * logdet - 0.5 * q * _LOG_2PI
+            loo_logdens[c] = -0.5 * quad - 0.5 * logdet - 0.5 * q * LOG_2PI
         if mode & MODE_GRAD:
             tr = 0.0
             for a in range(q):
@@ -301,8 +301,8 @@ def _downward(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
                 for j in range(k):
                     Q[i, j] = 0.0
         else:
-            if c >= _PREFETCH_AHEAD:
-                _prefetch_row(Pm, parent[c - _PREFETCH_AHEAD] - ntip)
+            if c >= PREFETCH_AHEAD:
+                prefetch_row(Pm, parent[c - PREFETCH_AHEAD] - ntip)
             p = parent[c] - ntip
             # siblings' messages: before c (upward pass) plus after c (running sum),
             # rather than the total minus c, which could cancel badly

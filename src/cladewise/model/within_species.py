@@ -77,7 +77,7 @@ __all__ = [
     "simulate_specimens",
 ]
 
-_LOG_2PI = math.log(2.0 * math.pi)
+LOG_2PI = math.log(2.0 * math.pi)
 
 
 # --------------------------------------------------------------------------- statistics
@@ -209,7 +209,7 @@ def _term_constants(stats: SpecimenStats, k: int) -> tuple[np.ndarray, np.ndarra
     const_w = np.where(
         regular,
         wishart_logp_from_parts(np.where(regular, logdet_A, 0.0), np.where(regular, nu, k), k, 0.0, 0.0),
-        -0.5 * nu * k * _LOG_2PI,
+        -0.5 * nu * k * LOG_2PI,
     )
     d = stats.inc_dof
     use_c = d >= 1
@@ -218,7 +218,7 @@ def _term_constants(stats: SpecimenStats, k: int) -> tuple[np.ndarray, np.ndarra
     const_c = np.where(
         chi,
         (0.5 * dd - 1.0) * np.log(np.where(chi, stats.inc_ss, 1.0)) - 0.5 * dd * math.log(2.0) - gammaln(0.5 * dd),
-        -0.5 * dd * _LOG_2PI,
+        -0.5 * dd * LOG_2PI,
     )
     return np.where(use_w, const_w, 0.0), use_w, np.where(use_c, const_c, 0.0), use_c
 
