@@ -69,3 +69,69 @@ def test_tree_sample_fit_reconstructs_on_the_reference_tree(tmp_path, monkeypatc
     assert js["ancestral"]["reference_tree_only"] is True
     anc = pd.read_csv(tmp_path / "fit" / "ancestral.csv")
     assert anc["node"].nunique() == 7 and np.isfinite(anc["mean"]).all()  # padding nodes left out
+
+
+def test_discrete_traits_get_state_probabilities_in_the_folder_and_report(tmp_path, monkeypatch):
+    """Threshold model: predicted and ancestral state probabilities reach the fit folder and report.
+
+    The numbers themselves are checked against dense Gaussian conditioning of the
+    liabilities in tests/model/test_threshold.py; here they must be probabilities that
+    sum to 1 and equal the library functions' values for the same draws.
+    """
+    from cladewise.evaluation.discrete import state_probabilities
+    from cladewise.report import write_fit_report
+
+    table = _write_data(tmp_path / "data", n=10)
+    table["night"] = np.where(table["b"] > table["b"].median(), "yes", "no")
+    table.loc[[1, 4], "night"] = ""  # two unknown states, to be predicted
+    table.to_csv(tmp_path / "data" / "traits.csv", index=False)
+    spec = _spec(tmp_path, model='kind = "correlated"\ntraits = ["a", "night"]\n'
+                 'discrete = { night = ["no", "yes"] }')
+    _no_sampler(monkeypatch, interrupt=False)
+    import nutpie
+
+    # the liabilities have a flat prior (their density is the tree likelihood), so the
+    # stand-in draws are random points on the unconstrained scale, not prior draws
+    monkeypatch.setattr(nutpie, "sample", lambda built, **kw: _point_draws(built))
+    res = fit_from_spec(spec, out=tmp_path / "fit", progress=False)
+    out = tmp_path / "fit"
+    sp = pd.read_csv(out / "state_predictions.csv")
+    assert set(sp["species"]) == set(table["species"].iloc[[1, 4]])
+    np.testing.assert_allclose(sp["P(no)"] + sp["P(yes)"], 1.0, rtol=1e-9)
+    ref = state_probabilities(res, seed=int(res.info["sampling"]["seed"]))
+    np.testing.assert_allclose(sp["P(yes)"].to_numpy(), ref["P(yes)"].to_numpy(), rtol=1e-9)
+    ns = pd.read_csv(out / "ancestral_states.csv")
+    assert len(ns) == 9 and (ns["trait"] == "night").all()
+    np.testing.assert_allclose(ns["P(no)"] + ns["P(yes)"], 1.0, rtol=1e-9)
+    html = write_fit_report(out).read_text()
+    assert "PREDICTED probabilities" in html and "State probabilities at the root" in html
+
+
+def _point_draws(built, n_chains=2, n_draws=6):
+    """Stand-in posterior: small random points on the unconstrained scale (no compile, no sampler)."""
+    import xarray as xr
+
+    model = built.model
+    outs = model.unobserved_value_vars  # free variables on their own scale, and deterministics
+    fn = model.compile_fn(outs, inputs=model.value_vars, on_unused_input="ignore", point_fn=False,
+                          mode="FAST_COMPILE")
+    shapes = model.eval_rv_shapes()
+    rng = np.random.default_rng(3)
+    rows = []
+    for _ in range(n_chains * n_draws):
+        pt = {v.name: 0.1 * rng.standard_normal(shapes[v.name]) for v in model.value_vars}
+        rows.append(fn(**pt))
+    dims = model.named_vars_to_dims
+    data = {}
+    for j, var in enumerate(outs):
+        arr = np.stack([r[j] for r in rows]).reshape((n_chains, n_draws) + np.shape(rows[0][j]))
+        data[var.name] = (("chain", "draw") + tuple(dims.get(var.name, ())) if var.name in dims else
+                          ("chain", "draw") + tuple(f"{var.name}_dim_{d}" for d in range(arr.ndim - 2)), arr)
+    coords = {k: list(v) for k, v in model.coords.items()}
+    post = xr.Dataset({k: (d, a) for k, (d, a) in data.items()},
+                      coords={"chain": np.arange(n_chains), "draw": np.arange(n_draws),
+                              **{k: v for k, v in coords.items() if any(k in d for d, _ in data.values())}})
+    stats = {"diverging": (("chain", "draw"), np.zeros((n_chains, n_draws), bool)),
+             "energy": (("chain", "draw"), rng.standard_normal((n_chains, n_draws)))}
+    return az.InferenceData(posterior=post, sample_stats=xr.Dataset(stats, coords={
+        "chain": np.arange(n_chains), "draw": np.arange(n_draws)}))

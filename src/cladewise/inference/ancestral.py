@@ -492,10 +492,43 @@ def add_reconstruction(result: Any, *, max_draws: int = MAX_DRAWS, seed: int | N
     result.tables["ancestral.csv"] = rec.nodes
     if len(rec.predictions):
         result.tables["predictions.csv"] = rec.predictions
+    state_files = _add_state_tables(result, max_draws, seed) if not pooled else []
     result.info["ancestral"] = {
         "n_draws": int(rec.ancestral.attrs["n_draws"]), "what": rec.ancestral.attrs["what"],
         "n_nodes": int(rec.ancestral.sizes["node"]), "n_predicted_cells": int(len(rec.predictions)),
-        "reference_tree_only": bool(pooled), "notes": list(rec.notes),
+        "reference_tree_only": bool(pooled), "notes": list(rec.notes), "state_tables": state_files,
     }
     result.info["notes"] = list(result.info.get("notes", [])) + rec.notes
     return rec
+
+
+def _add_state_tables(result: Any, max_draws: int, seed: int) -> list[str]:
+    """Discrete traits: probabilities of each state for species without one and at every node.
+
+    ``state_predictions.csv`` (species, trait, P(state) ...) and ``ancestral_states.csv``
+    (trait, node, species below, P(state) ...), from the liabilities' conditionals
+    (:mod:`cladewise.evaluation.discrete`). Returns the file names added.
+    """
+    setup = getattr(result.built, "discrete", None)
+    if setup is None:
+        return []
+    from cladewise.evaluation.discrete import node_state_probabilities, state_probabilities
+
+    added = []
+    pred = state_probabilities(result, max_draws=max_draws, seed=seed)
+    if len(pred):
+        result.tables["state_predictions.csv"] = pred
+        added.append("state_predictions.csv")
+    names = node_names(result.built.data.tree)
+    parts = []
+    for t in setup.traits:
+        df = node_state_probabilities(result, t.name, max_draws=max_draws, seed=seed)
+        df.insert(0, "trait", t.name)
+        parts.append(df)
+    nodes = pd.concat(parts, ignore_index=True)
+    if {"node", "tip_a", "tip_b"} <= set(names.columns):
+        nodes = nodes.merge(names[["node", "tip_a", "tip_b"]], on="node", how="left")
+    result.tables["ancestral_states.csv"] = nodes
+    added.append("ancestral_states.csv")
+    return added
+

@@ -215,4 +215,30 @@ def ancestral_section(view, fig_dir: Path, tables: dict[str, pd.DataFrame]
         if len(pt) > 200:
             parts.append(f'<p class="skip">The first 200 of {len(pt)} predicted cells are shown; '
                          "predictions.csv holds all.</p>")
+    parts.append(_state_tables(view, tables))
     return "".join(parts), figs
+
+
+def _state_tables(view, tables: dict[str, pd.DataFrame]) -> str:
+    """Discrete traits: predicted state probabilities and the root's, from the fit folder's CSVs."""
+    out = []
+    pred_file, node_file = Path(view.folder) / "state_predictions.csv", Path(view.folder) / "ancestral_states.csv"
+    if pred_file.is_file():
+        sp = pd.read_csv(pred_file)
+        tables["state_predictions"] = sp
+        probs = tuple(c for c in sp.columns if c.startswith("P("))
+        out.append("<h3>Predicted states of species without one (not observations)</h3>"
+                   '<div class="banner note"><b>These are PREDICTED probabilities</b> of each state for species '
+                   "whose state is unknown, from the threshold model given their relatives and their own "
+                   "continuous traits; they are not data.</div>"
+                   + table_html(sp.head(200), numeric=probs))
+    if node_file.is_file():
+        ns = pd.read_csv(node_file)
+        tables["ancestral_states"] = ns
+        root = ns.loc[ns.groupby("trait")["node"].idxmax()]  # the root is the last node
+        probs = tuple(c for c in root.columns if c.startswith("P("))
+        out.append("<h3>State probabilities at the root</h3><p>From the root's liability given all data; "
+                   "ancestral_states.csv holds every node. Deep nodes are weakly informed.</p>"
+                   + table_html(root.drop(columns=[c for c in ("tip_a", "tip_b") if c in root.columns])
+                                , numeric=probs))
+    return "".join(out)
