@@ -119,7 +119,10 @@ def test_ctrl_c_in_a_real_process(tiny, tmp_path):
     finally:
         proc.kill()
     assert proc.returncode == 130
-    assert err.strip() == "cladewise: interrupted; nothing saved"
+    # the last line is ours; a line before it may come from another process's lock on the
+    # PyTensor compile folder (shared by parallel runs), never a traceback
+    assert err.strip().splitlines()[-1] == "cladewise: interrupted; nothing saved"
+    assert "Traceback" not in err
 
 
 # ------------------------------------------------------------------ closed pipe
