@@ -105,7 +105,9 @@ def test_ctrl_c_in_a_real_process(tiny, tmp_path):
     import time
 
     spec = tiny(tmp_path)
-    code = ("import time, cladewise.pipeline as p\n"
+    # a child started from a background job inherits an ignored SIGINT; a terminal's default is wanted
+    code = ("import signal; signal.signal(signal.SIGINT, signal.default_int_handler)\n"
+            "import time, cladewise.pipeline as p\n"
             "def slow(*a, **k):\n    print('ready', flush=True); time.sleep(60)\n"
             "p.check_spec = slow\n"
             "from cladewise.cli.main import main\nimport sys\nsys.exit(main(['check', sys.argv[1]]))\n")
