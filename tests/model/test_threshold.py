@@ -249,8 +249,9 @@ def test_spec_declaration_and_model_checks():
         ModelSpec.from_dict(read_table({"traits": ["x", "s"], "discrete": {"s": ["only"]}}, MODEL))
     with pytest.raises(InputError, match="twice"):
         read_table({"traits": ["x", "s"], "discrete": {"s": ["a", "a"]}}, MODEL)
-    with pytest.raises(InputError, match="species_covariance"):
-        ModelSpec.from_dict({"traits": ["x", "s"], "discrete": {"s": ["a", "b"]}, "species_covariance": True})
+    with pytest.raises(InputError, match="every trait of this model is discrete"):
+        ModelSpec.from_dict({"traits": ["s", "t"], "discrete": {"s": ["a", "b"], "t": ["a", "b"]},
+                             "measurement_error": "se"})
     tree = star_tree(4)
     with pytest.raises(InputError, match="not a declared state"):
         build_model(data_for(tree, np.arange(4.0), s=["a", "b", "c", "a"]),

@@ -20,7 +20,12 @@ import pandas as pd
 
 from cladewise.errors import InputError
 
-__all__ = ["DiscreteTrait", "check_declaration", "encode_states", "discrete_column"]
+__all__ = ["DiscreteTrait", "check_declaration", "encode_states", "discrete_column", "one_state_per_species",
+           "MIXED_SEPARATOR"]
+
+#: joins the different texts of one species' specimens (data/traits.py), so a
+#: polymorphic species is caught here rather than given its first specimen's state
+MIXED_SEPARATOR = " | "
 
 
 @dataclass(frozen=True)
@@ -133,6 +138,12 @@ def encode_states(values: Sequence[Any], species: Sequence[str], name: str,
         lab = _label(v)
         if lab == "":
             continue
+        if lab not in pos and MIXED_SEPARATOR in lab:
+            raise InputError(
+                f"{source}: the specimens of species {species[i]!r} are in more than one state of {name!r} "
+                f"({lab}). A discrete trait takes one state per species: give the species one state in every "
+                "specimen row, or leave its cells empty"
+            )
         if lab not in pos:
             hint = ""
             if lab.lower() in low:
@@ -182,3 +193,22 @@ def discrete_column(values: pd.DataFrame, text: pd.DataFrame | None, name: str) 
         + (f"; did you mean {close[0]!r}?" if close else "")
         + f" Columns: {', '.join(map(str, have))}."
     )
+
+
+def one_state_per_species(specimens: pd.DataFrame | None, name: str) -> None:
+    """Refuse a numeric state column whose specimens of one species disagree.
+
+    A discrete trait takes one state per species; averaging 0/1 codes over specimens
+    would turn a polymorphic species into a state nobody declared.
+    """
+    if specimens is None or name not in specimens.columns or "species" not in specimens.columns:
+        return
+    per = specimens.groupby("species", sort=False)[name].nunique()
+    mixed = list(per.index[per > 1])
+    if mixed:
+        raise InputError(
+            f"discrete trait {name!r}: the specimens of {len(mixed)} species are in more than one state "
+            f"(e.g. {', '.join(map(repr, mixed[:3]))}). A discrete trait takes one state per species: give each "
+            "species its state (or the majority state) in every specimen row, or leave the cells of "
+            "polymorphic species empty"
+        )

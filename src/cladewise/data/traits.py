@@ -23,7 +23,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Sequence
+from typing import Any, Sequence
 
 import numpy as np
 import pandas as pd
@@ -507,7 +507,7 @@ def read_specimen_table(
         extra = (
             pd.DataFrame({"species": sp.to_numpy(), **{c: table.cells[c] for c in text_cols}})
             .groupby("species", sort=False)
-            .first()
+            .agg(_species_text)
             .reindex(order)
             .reset_index(drop=True)
         )
@@ -523,6 +523,16 @@ def read_specimen_table(
         extra=extra,
         **_file_facts(table, decimal),
     )
+
+
+def _species_text(cells: pd.Series) -> Any:
+    """One species' text cell from its specimen rows; different texts are kept, joined."""
+    from cladewise.data.discrete import MIXED_SEPARATOR
+
+    vals = [v for v in pd.unique(cells.dropna()) if str(v).strip() != ""]
+    if not vals:
+        return None
+    return vals[0] if len(vals) == 1 else MIXED_SEPARATOR.join(sorted(map(str, vals)))
 
 
 def read_traits(

@@ -113,6 +113,7 @@ def pointwise_loglik_discrete(built: Any, d: dict[str, np.ndarray], cuts: np.nda
     is_disc[setup.columns] = True
     codes = np.asarray(built.y, dtype=float)
     S = d["R"].shape[0]
+    fitted = d.get("fitted")
     parent = built.data.tree.parent
     out = np.zeros((S, obs.shape[0]))
     patterns: dict[bytes, list[int]] = {}
@@ -139,6 +140,8 @@ def pointwise_loglik_discrete(built: Any, d: dict[str, np.ndarray], cuts: np.nda
                 for col in disc:
                     a = setup.columns.index(int(col))
                     lo, hi = _bounds(setup, a, codes[idx, col], cuts[s])
+                    if fitted is not None:  # probit regression: the engine sees liability - X beta
+                        lo, hi = lo - fitted[s][idx, col], hi - fitted[s][idx, col]
                     los.append(lo)
                     his.append(hi)
                 lo, hi = np.stack(los, 1), np.stack(his, 1)
@@ -155,13 +158,24 @@ def pointwise_loglik_discrete(built: Any, d: dict[str, np.ndarray], cuts: np.nda
     return out - n_cont[None, :] * d["log_scale"]
 
 
-def _ancestral(built: Any, d: dict[str, np.ndarray], s: int):
-    from cladewise.engine import ancestral_states
+def _conditionals(built: Any, d: dict[str, np.ndarray], rows: np.ndarray | None = None):
+    """One draw's liabilities: every node's conditional on the trait scale, or, for the
+    species ``rows``, their true values' conditionals (species-level deviation included;
+    a probit regression's ``X beta`` added)."""
+    from cladewise.inference.ancestral import node_conditionals, species_conditionals
 
-    lengths = d["lengths"][s] if d["lengths"].ndim == 2 else d["lengths"]
-    err = d["err_var"][s] if d["err_var"].ndim >= 3 else d["err_var"]
-    return ancestral_states(built.data.tree.parent, lengths, d["y"][s], built.observed, d["R"][s], d["E"][s],
-                            err, d["mu"][s])
+    observed = built.observed
+    mean, cov = node_conditionals(built.data.tree.parent, d, observed)
+    if rows is None:
+        return mean, cov
+    n = observed.shape[0]
+    D = np.asarray(d["node_scale"], dtype=float)[:n]
+    mu = np.asarray(d["mu"], dtype=float)
+    tm, tc = mu + (mean[:n] - mu) / D[:, None], cov[:n] / (D**2)[:, None, None]  # back to the engine scale
+    m, c = species_conditionals(d, observed, tm, tc, rows)
+    if "fitted" in d:
+        m = m + np.asarray(d["fitted"], dtype=float)[rows]
+    return m, c
 
 
 def _state_probs(setup: Any, a: int, m: np.ndarray, v: np.ndarray, cuts: np.ndarray) -> np.ndarray:
@@ -178,15 +192,23 @@ def _draw_subset(S: int, max_draws: int | None, seed: int) -> np.ndarray:
     return np.sort(np.random.default_rng(seed).choice(S, size=max_draws, replace=False))
 
 
-def _fit_parts(fit: Any):
-    from cladewise.inference.draws import engine_draws
-
+def _fit_parts(fit: Any, max_draws: int | None, seed: int):
+    """The fit's model, its per-draw engine inputs for a subset of draws, and their cut vectors."""
     built = getattr(fit, "built", None)
     if built is None or getattr(built, "discrete", None) is None:
         raise InputError("state probabilities need a fit of a model with discrete traits, with its model "
                          "(a FitResult from fit(); a saved folder does not carry the compiled model)")
-    d, _ = engine_draws(built, fit.idata)
-    return built, d, draw_cuts(built, fit.idata)
+    if "tip_mean" in built.engine_inputs:
+        raise InputError("state probabilities are not available for multi-optimum OU models yet")
+    post = fit.idata.posterior
+    total = int(post.sizes["chain"]) * int(post.sizes["draw"])
+    cuts = draw_cuts(built, fit.idata)
+    pick = _draw_subset(total, max_draws, seed)
+    names = [rv.name for rv in built.model.free_RVs]
+    arrays = {v: post[v].values.reshape((total,) + post[v].shape[2:]) for v in names}
+    fn = built.engine_function(extra=("node_scale", "E_species"))
+    draws = ({**fn({v: arrays[v][s] for v in names})} for s in pick)
+    return built, draws, cuts[pick], pick.size
 
 
 def state_probabilities(fit: Any, max_draws: int | None = 1000, seed: int = 0) -> pd.DataFrame:
@@ -203,23 +225,26 @@ def state_probabilities(fit: Any, max_draws: int | None = 1000, seed: int = 0) -
         One row per (species, trait) with a missing state: columns ``species``,
         ``trait``, and ``P(<state>)`` for every state of that trait.
     """
-    built, d, cuts = _fit_parts(fit)
+    built, draws, cuts, S = _fit_parts(fit, max_draws, seed)
     setup = built.discrete
-    draws = _draw_subset(cuts.shape[0], max_draws, seed)
-    rows = []
-    for a, (t, col) in enumerate(zip(setup.traits, setup.columns)):
-        miss = np.flatnonzero(~np.isfinite(t.codes))
-        if miss.size == 0:
-            continue
-        acc = np.zeros((miss.size, t.n_states))
-        for s in draws:
-            mean, cov = _ancestral(built, d, s)
-            acc += _state_probs(setup, a, mean[miss, col], cov[miss, col, col], cuts[s])
-        acc /= draws.size
-        for i, sp in enumerate(miss):
-            rows.append({"species": built.species[sp], "trait": t.name,
-                         **{f"P({st})": float(acc[i, q]) for q, st in enumerate(t.states)}})
-    return pd.DataFrame(rows)
+    ok = np.ones(len(built.species), dtype=bool) if built.design_ok is None else built.design_ok
+    miss = [np.flatnonzero(~np.isfinite(t.codes) & ok) for t in setup.traits]
+    rows = np.unique(np.concatenate(miss)).astype(int)
+    if rows.size == 0:
+        return pd.DataFrame(rows)
+    acc = [np.zeros((m.size, t.n_states)) for m, t in zip(miss, setup.traits)]
+    for s, d in enumerate(draws):
+        mean, cov = _conditionals(built, d, rows)
+        for a, (t, col) in enumerate(zip(setup.traits, setup.columns)):
+            at = np.searchsorted(rows, miss[a])
+            acc[a] += _state_probs(setup, a, mean[at, col], cov[at, col, col], cuts[s])
+    out = []
+    for a, t in enumerate(setup.traits):
+        acc[a] /= S
+        for i, sp in enumerate(miss[a]):
+            out.append({"species": built.species[sp], "trait": t.name,
+                        **{f"P({st})": float(acc[a][i, q]) for q, st in enumerate(t.states)}})
+    return pd.DataFrame(out)
 
 
 def node_state_probabilities(fit: Any, trait: str, max_draws: int | None = 1000, seed: int = 0) -> pd.DataFrame:
@@ -230,20 +255,22 @@ def node_state_probabilities(fit: Any, trait: str, max_draws: int | None = 1000,
     nodes in the tree's node order (``node`` = FlatTree index; the root last), with the
     number of species below each node.
     """
-    built, d, cuts = _fit_parts(fit)
+    built, draws, cuts, S = _fit_parts(fit, max_draws, seed)
     setup = built.discrete
+    if built.spec.kind == "regression":
+        raise InputError("node state probabilities need the predictors' values at the nodes, which a regression "
+                         "does not model; the fit's ancestral values hold the response's residual liability")
     if trait not in setup.names:
         raise InputError(f"{trait!r} is not a discrete trait of this fit; discrete traits: {', '.join(setup.names)}")
     a = setup.names.index(trait)
     col, t = setup.columns[a], setup.traits[a]
     tree = built.data.tree
     nodes = np.arange(tree.n_tips, tree.n_nodes)
-    draws = _draw_subset(cuts.shape[0], max_draws, seed)
     acc = np.zeros((nodes.size, t.n_states))
-    for s in draws:
-        mean, cov = _ancestral(built, d, s)
+    for s, d in enumerate(draws):
+        mean, cov = _conditionals(built, d)
         acc += _state_probs(setup, a, mean[nodes, col], cov[nodes, col, col], cuts[s])
-    acc /= draws.size
+    acc /= S
     n_below = np.array([len(b) for b in tree.tips_below()])[nodes] if hasattr(tree, "tips_below") else None
     df = pd.DataFrame(acc, columns=[f"P({st})" for st in t.states])
     df.insert(0, "node", nodes)

@@ -235,14 +235,9 @@ def node_names(tree: Any) -> pd.DataFrame:
 
 # --------------------------------------------------------------------------- regression
 def _regression_parts(built: Any, post: xr.Dataset, total: int) -> tuple[np.ndarray, np.ndarray]:
-    """Fitted values ``x_i beta`` per draw (S, N) and which species have all predictors."""
-    from formulaic import Formula
-
-    needed = [v for v in Formula(built.spec.formula).rhs.required_variables if v in built.data.values.columns]
-    vals = built.data.values[needed].to_numpy(dtype=float) if needed else np.zeros((len(built.species), 0))
-    ok = np.all(np.isfinite(vals), axis=1)
+    """Coefficients per draw (S, p) and which species have all predictors."""
     coef = post["coef"].values.reshape(total, -1)
-    return coef, ok
+    return coef, np.asarray(built.design_ok, dtype=bool)
 
 
 # --------------------------------------------------------------------------- driver
@@ -371,7 +366,7 @@ def reconstruct(
         # a discrete trait is reconstructed as its liability (threshold model); the
         # probabilities of its states come from cladewise.evaluation.discrete
         for j in disc.columns:
-            trait_names[j] = f"{traits[j]} (liability)"
+            trait_names[j] = f"{traits[j]} ({'residual ' if regression else ''}liability)"
         notes.append("discrete traits are reconstructed and predicted on their liability scale; state "
                      "probabilities: cladewise.evaluation.discrete.node_state_probabilities and "
                      "state_probabilities")
@@ -519,6 +514,8 @@ def _add_state_tables(result: Any, max_draws: int, seed: int) -> list[str]:
     if len(pred):
         result.tables["state_predictions.csv"] = pred
         added.append("state_predictions.csv")
+    if result.built.spec.kind == "regression":  # node states need predictor values at the nodes
+        return added
     names = node_names(result.built.data.tree)
     parts = []
     for t in setup.traits:

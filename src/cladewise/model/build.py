@@ -68,7 +68,8 @@ from cladewise.model.evolution import (
 )
 from cladewise.data.trees import FlatTree
 from cladewise.model.quantities import summary_names
-from cladewise.model.threshold import check_discrete_spec, discrete_notes, discrete_terms, prepare_discrete
+from cladewise.model.threshold import (DiscreteSetup, check_discrete_spec, continuous_error, discrete_notes,
+                                       discrete_terms, prepare_discrete, probit_regression_terms)
 from cladewise.model.priors import (
     PARAMETER_NAMES,
     PRIOR_KEYS,
@@ -261,7 +262,8 @@ class BuiltModel:
     likelihood: str
     notes: list[str] = field(default_factory=list)
     predictors: list[str] = field(default_factory=list)
-    design: np.ndarray | None = None  # regression design matrix (N, p)
+    design: np.ndarray | None = None  # regression design matrix (N, p); rows with a missing predictor are 0
+    design_ok: np.ndarray | None = None  # (N,) bool: the species has every predictor
     painting: Any = None  # data.regimes.Painting of a regime model; engine R is then (regimes, k, k)
     discrete: Any = None  # DiscreteSetup of the threshold model (y holds state codes there)
 
@@ -282,7 +284,7 @@ class BuiltModel:
         ``extra`` adds other entries of ``engine_inputs`` (e.g. ``"node_scale"``).
         """
         names = ["lengths", "y", "R", "E", "err_var", "mu", "log_scale", *extra]
-        names += [n for n in ("tip_mean",) if n in self.engine_inputs and n not in names]
+        names += [n for n in ("tip_mean", "fitted") if n in self.engine_inputs and n not in names]
         outs = [pt.as_tensor_variable(self.engine_inputs[k]) for k in names]
         fn = pytensor.function(self.model.free_RVs, outs, on_unused_input="ignore")
         rv_names = [rv.name for rv in self.model.free_RVs]
@@ -408,9 +410,16 @@ def build_model(
     if not tbar > 0:
         raise InputError("the tree has zero height: every branch length is 0")
 
-    disc = None
+    disc, design_ok = None, None
     if spec.kind == "regression":
-        y, observed, traits, X, predictors, err_cols = regression_data(data, spec)
+        y, observed, traits, X, predictors, err_cols, found, disc_response = regression_data(data, spec)
+        design_ok = np.all(np.isfinite(X), axis=1)
+        X = np.where(design_ok[:, None], X, 0.0)
+        if found:
+            notes += [t.summary_line() for t in found]
+        if disc_response is not None:  # probit regression: the response's liability (model/threshold.py)
+            disc = DiscreteSetup([t for t in found if t.name == disc_response], [0])
+            notes += discrete_notes(regression=True)
     elif spec.discrete:
         traits = list(spec.traits)
         y, observed, disc = prepare_discrete(data, spec, traits)
@@ -437,6 +446,11 @@ def build_model(
         painting = rg.painting_from_spec(spec.regimes, tree, data.extra, data.values)
         rg.check_painting(spec, painting, tree, k, notes)
     coords = {"species": data.species, "trait": traits, "trait_": traits}
+    err_dims = ("trait", "trait_")
+    if disc is not None and spec.kind != "regression" and spec.measurement_error != "none":
+        cont_names = [t for j, t in enumerate(traits) if j not in disc.columns]
+        coords.update(continuous=cont_names, continuous_=cont_names)
+        err_dims = ("continuous", "continuous_")
     if predictors:
         coords["term"] = predictors
     with pm.Model(coords=coords) as model:
@@ -454,11 +468,14 @@ def build_model(
         t_mean = pt.dot(w_data, lengths)
 
         # --- rates and the response/trait means
-        if spec.kind == "regression":
+        E, fitted = None, None  # species-level covariance of a threshold model; a probit regression's X beta
+        if spec.kind == "regression" and disc is not None:
+            R, mu, y_t, E, fitted = probit_regression_terms(spec, disc, observed, X, predictors, t_mean, pri, priors)
+        elif spec.kind == "regression":
             ymean, ysd = scale_facts(y[observed[:, 0], 0])
             R, mu, y_t = regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors)
         elif disc is not None:  # threshold model: liabilities as exactly observed columns
-            R, mu, y_t = discrete_terms(spec, disc, y, observed, traits, t_mean, pri, priors)
+            R, mu, y_t, E = discrete_terms(spec, disc, y, observed, traits, t_mean, pri, priors)
         else:
             R, mu = rate_terms(spec, y, observed, traits, t_mean, pri, priors)
             y_t = pm.Data("obs_values", np.where(observed, y, 0.0))
@@ -473,14 +490,20 @@ def build_model(
 
         # --- species-level covariance
         if spec.species_covariance:
-            E = species_terms(y, observed, traits, pri, priors)
+            if E is None:
+                E = species_terms(y, observed, traits, pri, priors)
             share = pt.diag(R) * t_mean / (pt.diag(R) * t_mean + pt.diag(E))
             pm.Deterministic("phylo_share", share, dims="trait")
         else:
             E = pt.zeros((k, k))
 
         # --- measurement error
-        err_var = measurement_error(spec, data, err_cols, observed, priors, notes)
+        if disc is not None and spec.kind != "regression":  # liabilities carry no measurement error
+            err_var = continuous_error(
+                lambda cols, obs: measurement_error(spec, data, cols, obs, priors, notes, dims=err_dims),
+                traits, observed, disc)
+        else:
+            err_var = measurement_error(spec, data, err_cols, observed, priors, notes)
 
         # --- exact OU on a non-ultrametric tree: engine inputs of y' = mu + (y - mu) / D
         ey, e_err, e_E, log_scale, e_mu = y_t, err_var, E, pt.zeros(n), mu
@@ -509,7 +532,8 @@ def build_model(
         summary_vars=summary_vars,
         engine_inputs={"lengths": lengths, "y": ey, "R": R, "E": e_E, "err_var": e_err, "mu": e_mu,
                        "log_scale": log_scale, "node_scale": node_scale, "E_species": E,
-                       **({} if tip_mean is None else {"tip_mean": tip_scale[:, None] * tip_mean})},
+                       **({} if tip_mean is None else {"tip_mean": tip_scale[:, None] * tip_mean}),
+                       **({} if fitted is None else {"fitted": fitted})},
         tree_data=tree_data, likelihood=likelihood, notes=notes,
-        predictors=predictors, design=X, painting=painting, discrete=disc,
+        predictors=predictors, design=X, design_ok=design_ok, painting=painting, discrete=disc,
     )

@@ -31,7 +31,9 @@ def check_error_correlation_spec(spec: Any) -> None:
     if spec.kind == "regression":
         raise InputError("[model] error_correlation applies to kind = 'correlated' or 'independent', "
                          "not to a regression (its response is a single trait)")
-    ws.check_error_correlation(spec.error_correlation, len(spec.traits))
+    # with discrete traits the matrix is over the continuous traits (liabilities have no error)
+    disc = getattr(spec, "discrete", None) or {}
+    ws.check_error_correlation(spec.error_correlation, len([t for t in spec.traits if t not in disc]))
 
 
 def error_blocks(err_var, n: int, k: int):
@@ -42,13 +44,15 @@ def error_blocks(err_var, n: int, k: int):
     return (pt.eye(n)[:, None, :, None] * err_var[:, :, None, :]).reshape((n * k, n * k))
 
 
-def measurement_error(spec: Any, data: Any, cols: list, observed: np.ndarray, priors: list, notes: list):
+def measurement_error(spec: Any, data: Any, cols: list, observed: np.ndarray, priors: list, notes: list,
+                      dims: tuple[str, str] = ("trait", "trait_")):
     """Variance (N, k) or covariance (N, k, k) of the errors of the species means.
 
     ``measurement_error`` of the spec: ``none`` (zero), ``se`` (known standard errors,
     optionally correlated across traits), ``specimens`` (within-species covariance
     from specimen rows, or partially pooled per-trait variances). Appends to
-    ``priors`` and ``notes``.
+    ``priors`` and ``notes``. ``dims``: the model's coordinates of ``cols`` (the
+    continuous traits only, in a model with discrete traits).
     """
     n, k = observed.shape
     mode = spec.measurement_error
@@ -86,7 +90,7 @@ def measurement_error(spec: Any, data: Any, cols: list, observed: np.ndarray, pr
     if k >= 2 and data.specimens is not None:
         # traits measured on the same specimens: full within-species covariance
         stats = ws.specimen_statistics(data.specimens, data.species, cols)
-        return ws.within_species_error(stats, observed, cols, priors, PriorInfo)
+        return ws.within_species_error(stats, observed, cols, priors, PriorInfo, dims=dims)
     if k >= 2:
         notes.append("no specimen rows were given, only per-trait variances: the errors of the species "
                      "means are treated as independent across traits")
@@ -110,11 +114,11 @@ def measurement_error(spec: Any, data: Any, cols: list, observed: np.ndarray, pr
     for j, c in enumerate(cols):
         if not has_var[:, j].any():
             raise InputError(f"no species has two or more specimens of {c!r}: within-species variance cannot be estimated")
-    log_mean = pm.Normal("within_log_var_mean", mu=centre, sigma=2.0, dims="trait")
-    log_sd = pm.HalfNormal("within_log_var_sd", sigma=1.0, dims="trait")
-    z = pm.Normal("within_z", 0.0, 1.0, dims=("species", "trait"))
+    log_mean = pm.Normal("within_log_var_mean", mu=centre, sigma=2.0, dims=dims[0])
+    log_sd = pm.HalfNormal("within_log_var_sd", sigma=1.0, dims=dims[0])
+    z = pm.Normal("within_z", 0.0, 1.0, dims=("species", dims[0]))
     var_w = pt.exp(log_mean[None, :] + log_sd[None, :] * z)
-    pm.Deterministic("within_sd", pt.sqrt(pt.exp(log_mean)), dims="trait")
+    pm.Deterministic("within_sd", pt.sqrt(pt.exp(log_mean)), dims=dims[0])
     idx = np.nonzero(has_var)
     dof = nn[idx] - 1.0
     # (n-1) s^2 / sigma^2 ~ chi^2(n-1)  <=>  s^2 ~ Gamma((n-1)/2, rate=(n-1)/(2 sigma^2))

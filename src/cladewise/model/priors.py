@@ -43,6 +43,7 @@ __all__ = [
     "rate_terms",
     "species_terms",
     "regression_terms",
+    "regression_coefficients",
 ]
 
 #: prior overrides accepted in ``[model.priors]`` / ``ModelSpec.priors`` (declared,
@@ -184,7 +185,7 @@ def species_terms(y, observed, traits, pri, priors):
     return E
 
 
-def regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors):
+def regression_coefficients(X, predictors, observed, ymean, ysd, pri, priors):
     """Coefficients sampled on centred, scaled predictors; reported on the user's scale.
 
     Each non-intercept column x_j enters as z_j = (x_j - m_j) / s_j (mean and sd over
@@ -192,7 +193,8 @@ def regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors
     same likelihood, and the intercept sampled is the response at the predictors'
     means, which is nearly uncorrelated with the slopes; priors are placed on that
     scale. Reported: ``coef`` (intercept at the predictors' zero, slopes per unit x)
-    and ``intercept_at_mean`` (the response at the predictors' means).
+    and ``intercept_at_mean`` (the response at the predictors' means). Returns the
+    fitted values ``X beta`` (N,) as a tensor of the design's data container.
     """
     coef_scale = pri.get("coef_scale", 2.5)
     obs = observed[:, 0]
@@ -233,6 +235,19 @@ def regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors
     else:
         beta = b_user
     pm.Deterministic("coef", beta, dims="term")
+    X_d = pm.Data("design", X)
+    # centred design from the data container, so swapped designs stay exact
+    Z = (X_d - centre[None, :]) / scale[None, :]
+    return pt.dot(Z, b_z)
+
+
+def regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors):
+    """Coefficients (:func:`regression_coefficients`) and the residual rate of a regression.
+
+    Returns ``(R, mu, residuals)``: the engine sees the residuals ``y - X beta`` with
+    root mean 0.
+    """
+    fitted = regression_coefficients(X, predictors, observed, ymean, ysd, pri, priors)
     scale_r = 2.0 * float(pri.get("rate_scale", 1.0)) * ysd
     tip_sd = pm.HalfNormal("tip_sd", sigma=scale_r)
     sigma = tip_sd / pt.sqrt(t_mean)
@@ -242,9 +257,5 @@ def regression_terms(y, observed, X, predictors, ymean, ysd, t_mean, pri, priors
     R = pt.reshape(sigma**2, (1, 1))
     pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
     y_d = pm.Data("obs_values", np.where(observed, y, 0.0))
-    X_d = pm.Data("design", X)
-    # centred design from the data container, so swapped designs stay exact
-    Z = (X_d - centre[None, :]) / scale[None, :]
-    resid = y_d - pt.dot(Z, b_z)[:, None]
-    resid = pt.where(observed, resid, 0.0)
+    resid = pt.where(observed, y_d - fitted[:, None], 0.0)
     return R, pt.zeros(1), resid

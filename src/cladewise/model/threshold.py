@@ -40,11 +40,13 @@ import numpy as np
 import pymc as pm
 import pytensor.tensor as pt
 
-from cladewise.data.discrete import DiscreteTrait, check_declaration, discrete_column, encode_states
+from cladewise.data.discrete import (DiscreteTrait, check_declaration, discrete_column, encode_states,
+                                     one_state_per_species)
 from cladewise.errors import InputError
 
-__all__ = ["DiscreteSetup", "prepare_discrete", "discrete_terms", "corr_cholesky", "lkj_cholesky_logp",
-           "check_discrete_spec", "LIABILITY_ROOT_SD", "GAP_PRIOR"]
+__all__ = ["DiscreteSetup", "prepare_discrete", "discrete_terms", "probit_regression_terms", "continuous_error",
+           "corr_cholesky", "lkj_cholesky_logp", "check_discrete_spec", "discrete_notes", "LIABILITY_ROOT_SD",
+           "GAP_PRIOR"]
 
 #: prior sd of a liability's root mean, in liability tip sds (common practice: weakly
 #: informative; a state frequency between about 0.1% and 99.9% is well inside)
@@ -99,21 +101,14 @@ def check_discrete_spec(spec: Any) -> None:
         return
     spec.discrete = {k: list(v) for k, v in check_declaration(spec.discrete).items()}
     if spec.kind == "regression":
-        raise InputError(
-            "discrete traits are modelled jointly with the continuous ones: use kind = \"correlated\" with "
-            "traits = [...] listing both; the fit reports probit_coef (the regression of the liability on "
-            "the continuous traits) and the evolutionary slopes"
-        )
+        return  # which side of the formula each discrete trait is on: model/design.py
     extra = [t for t in spec.discrete if t not in spec.traits]
     if extra:
         raise InputError(f"discrete trait(s) {extra} are declared but not listed in traits = [...]; add them "
                          "to traits (their place there is their place in the model)")
-    if spec.species_covariance:
-        raise InputError("species_covariance = true is not available with discrete traits yet: a liability's "
-                         "scale is fixed by its phylogenetic tip variance. Leave species_covariance out")
-    if spec.measurement_error != "none":
-        raise InputError(f"measurement_error = {spec.measurement_error!r} is not available with discrete traits "
-                         "yet; use measurement_error = \"none\"")
+    if spec.measurement_error != "none" and all(t in spec.discrete for t in spec.traits):
+        raise InputError(f"measurement_error = {spec.measurement_error!r} applies to continuous traits, and every "
+                         "trait of this model is discrete; use measurement_error = \"none\"")
 
 
 def prepare_discrete(data: Any, spec: Any, traits: list[str]) -> tuple[np.ndarray, np.ndarray, DiscreteSetup]:
@@ -125,6 +120,7 @@ def prepare_discrete(data: Any, spec: Any, traits: list[str]) -> tuple[np.ndarra
     source = "the trait table"
     for j, name in enumerate(traits):
         if name in spec.discrete:
+            one_state_per_species(getattr(data, "specimens", None), name)
             cells = discrete_column(data.values, text, name)
             found.append(encode_states(cells, data.species, name, spec.discrete[name], source))
             cols.append(j)
@@ -199,11 +195,95 @@ def _interval_liabilities(setup: DiscreteSetup, cuts: Any, z: Any, states: np.nd
     return liab, pt.sum(jac)
 
 
-def discrete_terms(spec: Any, setup: DiscreteSetup, y: np.ndarray, observed: np.ndarray, traits: list[str],
-                   t_mean: Any, pri: dict, priors: list) -> tuple[Any, Any, Any]:
-    """Rates, root means and the engine's ``y`` for a model with discrete traits.
+def _cut_terms(setup: DiscreteSetup, priors: list) -> Any:
+    """The full cut vector: each trait's first threshold 0, then LogNormal gaps (ordered traits)."""
+    from cladewise.model.priors import PriorInfo
 
-    Call inside the model context. Returns ``(R, mu, y_t)``.
+    cuts = pt.zeros(setup.n_cuts)
+    n_free = len(setup.cut_labels)
+    if n_free:
+        gap = pm.LogNormal("threshold_gap", mu=GAP_PRIOR[0], sigma=GAP_PRIOR[1], shape=n_free)
+        a = 0
+        for t, off in zip(setup.traits, setup.cut_offsets):
+            m = t.n_states - 2
+            if m:
+                cuts = pt.set_subtensor(cuts[off + 1: off + 1 + m], pt.cumsum(gap[a: a + m]))
+                a += m
+        free_idx = np.concatenate([np.arange(off + 1, off + t.n_states - 1)
+                                   for t, off in zip(setup.traits, setup.cut_offsets)]).astype(int)
+        pm.modelcontext(None).add_coord("cut", setup.cut_labels)
+        pm.Deterministic("threshold", cuts[free_idx], dims="cut")
+        priors.append(PriorInfo("thresholds of ordered traits", f"first at 0; gaps LogNormal{GAP_PRIOR}",
+                                "in liability tip sds; keeps neighbouring thresholds apart"))
+    return cuts
+
+
+def _liability_values(setup: DiscreteSetup, cuts: Any, usable: np.ndarray, base: Any) -> Any:
+    """``base`` (N, k) with every usable state cell replaced by its sampled liability."""
+    rows, cols, states, trait_of = [], [], [], []
+    for a, (t, j) in enumerate(zip(setup.traits, setup.columns)):
+        idx = np.flatnonzero(np.isfinite(t.codes) & usable[:, j])
+        rows.append(idx)
+        cols.append(np.full(idx.size, j))
+        states.append(t.codes[idx].astype(int))
+        trait_of.append(np.full(idx.size, a))
+    rows, cols = np.concatenate(rows), np.concatenate(cols)
+    z = pm.Flat("liability_free", shape=rows.size)
+    liab, jac = _interval_liabilities(setup, cuts, z, np.concatenate(states), np.concatenate(trait_of))
+    pm.Potential("liability_jacobian", jac)
+    return pt.set_subtensor(base[rows, cols], liab)
+
+
+def _liability_shares(spec: Any, n: int, priors: list) -> Any:
+    """With a species-level covariance: each liability's phylogenetic share of its unit tip variance."""
+    from cladewise.model.priors import PriorInfo
+
+    if not spec.species_covariance:
+        return None
+    priors.append(PriorInfo("phylogenetic share of each liability's variance", "Beta(1, 1)",
+                            "uniform; a liability's total variance is fixed at 1, split between the tree "
+                            "(share) and the species level (1 - share)"))
+    return pm.Beta("liability_share", 1.0, 1.0, shape=n)
+
+
+def _species_covariance(y: np.ndarray, observed: np.ndarray, liab_cols: list[int], share: Any, pri: dict,
+                        priors: list) -> Any:
+    """Species-level covariance E when some traits are liabilities: their E sd is sqrt(1 - share).
+
+    The continuous traits' sds and the correlation are as in
+    :func:`cladewise.model.priors.species_terms` (HalfNormal of one trait sd, LKJ(2)).
+    """
+    from cladewise.model.priors import PriorInfo, scale_facts
+
+    k = y.shape[1]
+    sd = pt.zeros(k)
+    sd = pt.set_subtensor(sd[liab_cols], pt.sqrt(1.0 - share))
+    cont = [j for j in range(k) if j not in liab_cols]
+    if cont:
+        scales = float(pri.get("species_scale", 1.0)) * np.array(
+            [scale_facts(y[observed[:, j], j])[1] for j in cont])
+        sd = pt.set_subtensor(sd[cont], pm.HalfNormal("species_sd", sigma=scales, shape=len(cont)))
+        priors.append(PriorInfo("species-level sds of the continuous traits",
+                                "HalfNormal(" + ", ".join(f"{s:.3g}" for s in scales) + ")", "one trait sd"))
+    if k == 1:
+        return pt.reshape(sd**2, (1, 1))
+    free = pm.Flat("species_corr_free", shape=k * (k - 1) // 2)
+    L, log_jac = corr_cholesky(free, k)
+    pm.Potential("species_corr_prior", lkj_cholesky_logp(L, k, 2.0) + log_jac)
+    pm.Deterministic("species_corr", pt.dot(L, L.T), dims=("trait", "trait_"))
+    priors.append(PriorInfo("species-level correlation matrix", "LKJ(eta=2)",
+                            "mildly favours small residual correlations"))
+    chol = sd[:, None] * L
+    return pt.dot(chol, chol.T)
+
+
+def discrete_terms(spec: Any, setup: DiscreteSetup, y: np.ndarray, observed: np.ndarray, traits: list[str],
+                   t_mean: Any, pri: dict, priors: list) -> tuple[Any, Any, Any, Any]:
+    """Rates, root means, the engine's ``y`` and the species-level covariance (or None).
+
+    Call inside the model context. Returns ``(R, mu, y_t, E)``. With
+    ``species_covariance`` a liability's unit tip variance is split into a
+    phylogenetic share and a species-level rest.
     """
     from cladewise.model.priors import PriorInfo, scale_facts
 
@@ -220,7 +300,7 @@ def discrete_terms(spec: Any, setup: DiscreteSetup, y: np.ndarray, observed: np.
     mu = pm.Normal("root_mean", mu=means, sigma=root_sd, dims="trait")
     priors.append(PriorInfo("root_mean", "Normal(trait mean, " + ", ".join(f"{s:.3g}" for s in root_sd) + ")",
                             f"5 trait sds around the observed mean; a liability: Normal(0, {LIABILITY_ROOT_SD:g})"))
-    # --- tip sds: free for continuous traits, 1 for liabilities (identifiability)
+    # --- tip sds: free for continuous traits, 1 (or sqrt(share)) for liabilities (identifiability)
     tip = pt.ones(k)
     if cont.size:
         scales = 2.0 * float(pri.get("rate_scale", 1.0)) * sds[cont]
@@ -230,6 +310,9 @@ def discrete_terms(spec: Any, setup: DiscreteSetup, y: np.ndarray, observed: np.
                                 "HalfNormal(" + ", ".join(f"{s:.3g}" for s in scales) + ")", "2 x trait sd"))
     priors.append(PriorInfo("liability scale", "tip variance fixed at 1 (rate = 1 / mean root-to-tip variance)",
                             "a liability's scale is not identified; its first threshold is fixed at 0"))
+    share = _liability_shares(spec, len(setup.columns), priors)
+    if share is not None:
+        tip = pt.set_subtensor(tip[setup.columns], pt.sqrt(share))
     sigma = tip / pt.sqrt(t_mean)
     if spec.kind == "independent":
         R = pt.diag(sigma**2)
@@ -248,38 +331,56 @@ def discrete_terms(spec: Any, setup: DiscreteSetup, y: np.ndarray, observed: np.
         if cont.size:
             _probit_coefficients(R, setup, cont, traits)
     pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
-    # --- thresholds of ordered traits: 0, then positive gaps
-    cuts = pt.zeros(setup.n_cuts)
-    n_free = len(setup.cut_labels)
-    if n_free:
-        gap = pm.LogNormal("threshold_gap", mu=GAP_PRIOR[0], sigma=GAP_PRIOR[1], shape=n_free)
-        a = 0
-        for t, off in zip(setup.traits, setup.cut_offsets):
-            m = t.n_states - 2
-            if m:
-                cuts = pt.set_subtensor(cuts[off + 1: off + 1 + m], pt.cumsum(gap[a: a + m]))
-                a += m
-        free_idx = np.concatenate([np.arange(off + 1, off + t.n_states - 1)
-                                   for t, off in zip(setup.traits, setup.cut_offsets)]).astype(int)
-        pm.modelcontext(None).add_coord("cut", setup.cut_labels)
-        pm.Deterministic("threshold", cuts[free_idx], dims="cut")
-        priors.append(PriorInfo("thresholds of ordered traits", f"first at 0; gaps LogNormal{GAP_PRIOR}",
-                                "in liability tip sds; keeps neighbouring thresholds apart"))
-    # --- liabilities of the species with a state
-    rows, cols, states, trait_of = [], [], [], []
-    for a, (t, j) in enumerate(zip(setup.traits, setup.columns)):
-        idx = np.flatnonzero(np.isfinite(t.codes))
-        rows.append(idx)
-        cols.append(np.full(idx.size, j))
-        states.append(t.codes[idx].astype(int))
-        trait_of.append(np.full(idx.size, a))
-    rows, cols = np.concatenate(rows), np.concatenate(cols)
-    z = pm.Flat("liability_free", shape=rows.size)
-    liab, jac = _interval_liabilities(setup, cuts, z, np.concatenate(states), np.concatenate(trait_of))
-    pm.Potential("liability_jacobian", jac)
-    base = np.where(observed & ~is_disc[None, :], y, 0.0)
-    y_t = pt.set_subtensor(pm.Data("obs_values", base)[rows, cols], liab)
-    return R, mu, y_t
+    cuts = _cut_terms(setup, priors)
+    base = pm.Data("obs_values", np.where(observed & ~is_disc[None, :], y, 0.0))
+    y_t = _liability_values(setup, cuts, observed, base)
+    E = None if share is None else _species_covariance(y, observed, list(setup.columns), share, pri, priors)
+    return R, mu, y_t, E
+
+
+def probit_regression_terms(spec: Any, setup: DiscreteSetup, observed: np.ndarray, X: np.ndarray,
+                            predictors: list[str], t_mean: Any, pri: dict, priors: list
+                            ) -> tuple[Any, Any, Any, Any, Any]:
+    """A discrete response regressed on predictors: phylogenetic (ordered) probit regression.
+
+    The response's liability is ``X beta + e`` with ``e`` evolving on the tree; e's tip
+    variance is fixed at 1 (with ``species_covariance``: split into a phylogenetic
+    share and a species-level rest), so ``coef`` are probit coefficients: on a star
+    tree, those of an ordinary probit regression. The first threshold is 0, so the
+    intercept is identified. Returns ``(R, mu, residuals, E or None, fitted (N, 1))``.
+    """
+    from cladewise.model.priors import PriorInfo, regression_coefficients
+
+    # coefficients on the liability scale: 'y sd' is the unit residual sd
+    fitted = regression_coefficients(X, predictors, observed, 0.0, 1.0, pri, priors)
+    priors.append(PriorInfo("liability scale", "residual tip variance fixed at 1; first threshold at 0",
+                            "coefficients are then probit coefficients"))
+    share = _liability_shares(spec, 1, priors)
+    tip = pt.ones(1) if share is None else pt.sqrt(share)
+    R = pt.reshape(tip**2 / t_mean, (1, 1))
+    pm.Deterministic("evo_rate", pt.diag(R), dims="trait")
+    cuts = _cut_terms(setup, priors)
+    liab = _liability_values(setup, cuts, observed, pt.zeros(observed.shape))
+    resid = pt.where(observed, liab - fitted[:, None], 0.0)
+    E = None if share is None else pt.reshape(1.0 - share, (1, 1))
+    return R, pt.zeros(1), resid, E, fitted[:, None]
+
+
+def continuous_error(err_fn: Any, traits: list[str], observed: np.ndarray, setup: DiscreteSetup) -> Any:
+    """Measurement error of the continuous traits, with zero error on the liabilities.
+
+    ``err_fn(columns, observed_subset)`` builds the error of the continuous columns
+    (:func:`cladewise.model.measurement.measurement_error`); its ``(N, c)`` variances
+    or ``(N, c, c)`` covariances are placed into the model's k traits.
+    """
+    k = len(traits)
+    cont = [j for j in range(k) if j not in setup.columns]
+    sub = err_fn([traits[j] for j in cont], observed[:, cont])
+    n = observed.shape[0]
+    if sub.ndim == 2:
+        return pt.set_subtensor(pt.zeros((n, k))[:, cont], sub)
+    ci = np.array(cont)
+    return pt.set_subtensor(pt.zeros((n, k, k))[:, ci[:, None], ci[None, :]], sub)
 
 
 def _probit_coefficients(R: Any, setup: DiscreteSetup, cont: np.ndarray, traits: list[str]) -> None:
@@ -298,14 +399,20 @@ def _probit_coefficients(R: Any, setup: DiscreteSetup, cont: np.ndarray, traits:
     pm.Deterministic("probit_coef", pt.stack(rows), dims=("liability", "continuous"))
 
 
-def discrete_notes() -> list[str]:
+def discrete_notes(regression: bool = False) -> list[str]:
     """What the threshold model's numbers mean, for the notes of every fit that has one."""
     from cladewise.evaluation.discrete import LOO_MEANING
 
-    return [
-        "Discrete traits follow the threshold model: an unobserved liability evolves like a continuous trait "
-        "and the state is the interval between thresholds it falls in. Each liability's tip variance is fixed "
-        "at 1 and its first threshold at 0, so slopes involving a liability are per liability tip sd; "
-        "probit_coef gives the liability's regression on the continuous traits per residual liability sd.",
-        LOO_MEANING,
-    ]
+    if regression:
+        first = ("The discrete response follows the threshold model: an unobserved liability equals the "
+                 "predictors' linear term plus a residual that evolves on the tree, and the state is the interval "
+                 "between thresholds the liability falls in. The residual's tip variance is fixed at 1 and the "
+                 "first threshold at 0, so coef are probit coefficients (per residual liability sd); on a tree "
+                 "without structure they are those of an ordinary probit regression.")
+    else:
+        first = ("Discrete traits follow the threshold model: an unobserved liability evolves like a continuous "
+                 "trait and the state is the interval between thresholds it falls in. Each liability's tip "
+                 "variance is fixed at 1 and its first threshold at 0, so slopes involving a liability are per "
+                 "liability tip sd; probit_coef gives the liability's regression on the continuous traits per "
+                 "residual liability sd.")
+    return [first, LOO_MEANING]

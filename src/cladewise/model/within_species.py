@@ -252,10 +252,11 @@ def within_species_logp(stats: SpecimenStats, sd, corr):
 
 
 def within_species_error(stats: SpecimenStats, observed: np.ndarray, traits: Sequence[str],
-                         priors: list, prior_info: Any) -> Any:
+                         priors: list, prior_info: Any, dims: tuple[str, str] = ("trait", "trait_")) -> Any:
     """PyMC terms of the within-species covariance; returns the ``(N, k, k)`` error of the means.
 
-    Must be called inside a model with ``species``, ``trait`` and ``trait_`` coords.
+    Must be called inside a model with ``species`` and ``dims`` (default ``trait``,
+    ``trait_``) coords.
     Adds ``within_corr`` (shared within-species correlation), ``within_sd`` (typical
     within-species sd per trait) and the specimen likelihood ``within_species_loglik``.
     """
@@ -281,13 +282,13 @@ def within_species_error(stats: SpecimenStats, observed: np.ndarray, traits: Seq
         if (counted[:, j] & (pooled[:, j] > 0)).any() else 0.0
         for j in range(k)
     ])
-    log_mean = pm.Normal("within_log_var_mean", mu=centre, sigma=2.0, dims="trait")
-    log_sd = pm.HalfNormal("within_log_var_sd", sigma=1.0, dims="trait")
-    z = pm.Normal("within_z", 0.0, 1.0, dims=("species", "trait"))
+    log_mean = pm.Normal("within_log_var_mean", mu=centre, sigma=2.0, dims=dims[0])
+    log_sd = pm.HalfNormal("within_log_var_sd", sigma=1.0, dims=dims[0])
+    z = pm.Normal("within_z", 0.0, 1.0, dims=("species", dims[0]))
     sd = pt.exp(0.5 * (log_mean[None, :] + log_sd[None, :] * z))
-    pm.Deterministic("within_sd", pt.sqrt(pt.exp(log_mean)), dims="trait")
+    pm.Deterministic("within_sd", pt.sqrt(pt.exp(log_mean)), dims=dims[0])
     corr = pm.LKJCorr("within_corr_lkj", n=k, eta=2.0, return_matrix=True)
-    corr = pm.Deterministic("within_corr", corr, dims=("trait", "trait_"))
+    corr = pm.Deterministic("within_corr", corr, dims=dims)
     pm.Potential("within_species_loglik", within_species_logp(stats, sd, corr))
     priors.append(prior_info("within-species log variance", "Normal(log median s^2, 2) mean, HalfNormal(1) spread",
                              "partial pooling across species; species with one specimen borrow strength"))
