@@ -135,3 +135,42 @@ def _point_draws(built, n_chains=2, n_draws=6):
              "energy": (("chain", "draw"), rng.standard_normal((n_chains, n_draws)))}
     return az.InferenceData(posterior=post, sample_stats=xr.Dataset(stats, coords={
         "chain": np.arange(n_chains), "draw": np.arange(n_draws)}))
+
+
+def test_probit_regression_and_measured_traits_reach_the_folder_and_report(tmp_path, monkeypatch):
+    """A discrete response regressed on a trait, and a discrete trait beside traits with standard errors.
+
+    Plumbing only (the numbers are checked against statsmodels' probit and dense
+    Gaussian algebra in tests/model/test_threshold_combined.py): state predictions for
+    the species without a state, no node states for a regression, replicated states
+    that are state codes, and a report that renders.
+    """
+    import nutpie
+
+    from cladewise.report import write_fit_report
+
+    table = _write_data(tmp_path / "data", n=10)
+    table["night"] = np.where(table["b"] > table["b"].median(), "yes", "no")
+    table.loc[[3], "night"] = ""
+    table["a_se"] = 0.1
+    table.to_csv(tmp_path / "data" / "traits.csv", index=False)
+    _no_sampler(monkeypatch, interrupt=False)
+    monkeypatch.setattr(nutpie, "sample", lambda built, **kw: _point_draws(built))
+    spec = _spec(tmp_path, model='kind = "regression"\nformula = "night ~ a"\ndiscrete = { night = ["no", "yes"] }')
+    res = fit_from_spec(spec, out=tmp_path / "fit", progress=False)
+    out = tmp_path / "fit"
+    sp = pd.read_csv(out / "state_predictions.csv")
+    assert list(sp["species"]) == [table["species"].iloc[3]]
+    assert 0.0 < float(sp["P(yes)"].iloc[0]) < 1.0
+    assert not (out / "ancestral_states.csv").exists()
+    rep = res.idata.posterior_predictive["y_rep"].values
+    assert set(np.unique(rep)) <= {0.0, 1.0}
+    assert "coef" in res.idata.posterior
+    assert "PREDICTED probabilities" in write_fit_report(out).read_text()
+
+    spec2 = _spec(tmp_path, model='kind = "correlated"\ntraits = ["a", "night"]\nmeasurement_error = "se"\n'
+                  'species_covariance = true\ndiscrete = { night = ["no", "yes"] }')
+    res2 = fit_from_spec(spec2, out=tmp_path / "fit2", progress=False)
+    assert {"phylo_share", "species_corr", "evo_corr"} <= set(res2.idata.posterior)
+    assert (tmp_path / "fit2" / "ancestral_states.csv").is_file()
+    write_fit_report(tmp_path / "fit2")

@@ -232,7 +232,9 @@ def posterior_predictive(built: BuiltModel, idata: az.InferenceData, n_draws: in
         x = mu + D * (x - mu)
         if "tip_mean" in d:  # multi-optimum OU: the engine saw y minus each tip's expected value
             x = x + d["tip_mean"][s]
-        if is_regression:
+        if "fitted" in d:  # probit regression: liability = X beta + residual
+            x = x + d["fitted"][s]
+        elif is_regression:
             # residual + fitted value: y = X beta + e
             resid = np.where(built.observed, mu + D * (d["y"][s] - mu), 0.0)
             x = x + np.where(built.observed, built.y, 0.0) - resid

@@ -66,15 +66,26 @@ def describe_model(spec: Any, full_within: bool = False) -> str:
 
     evo = evolution_description(spec.evolution).name
     me = describe_error(spec.measurement_error, getattr(spec, "error_correlation", None), full_within)
+    disc = getattr(spec, "discrete", None) or {}
     if spec.kind == "regression":
-        head = f"phylogenetic regression {spec.formula} with {evo} residuals"
+        response = str(spec.formula).split("~", 1)[0].strip().strip("`").strip()
+        if response in disc:
+            head = (f"phylogenetic {'ordered ' if len(disc[response]) > 2 else ''}probit regression "
+                    f"{spec.formula} (threshold model) with {evo} residual liability")
+        else:
+            head = f"phylogenetic regression {spec.formula} with {evo} residuals"
+        preds = [t for t in disc if t != response]
+        if preds:
+            one = len(preds) == 1
+            head += (f"; {', '.join(preds)} {'enters' if one else 'enter'} as indicator columns against "
+                     f"{'its' if one else 'their'} first state")
+        disc = {}
     elif spec.kind == "correlated":
         head = f"correlated multivariate evolution of {', '.join(spec.traits)} under {evo}"
     else:
         head = f"independent evolution of {', '.join(spec.traits)} under {evo} (no evolutionary correlation)"
     if spec.species_covariance:
         head += ", plus species-level covariance"
-    disc = getattr(spec, "discrete", None) or {}
     if disc:
         head += f"; {', '.join(disc)} discrete (threshold model: liabilities with tip variance 1)"
     return f"{head}; {me}"
