@@ -40,7 +40,7 @@ def dataset(n: int, seed: int) -> ModelData:
     names = list(tree.tip_names)
     state = np.where(y[:, 1] > 0, "yes", "no")
     return ModelData(tree, pd.DataFrame({"size": y[:, 0]}, index=names),
-                     text=pd.DataFrame({"state": state}, index=names))
+                     extra=pd.DataFrame({"state": state}, index=names))
 
 
 def run(n: int, opts: SamplingOptions) -> dict:
