@@ -34,3 +34,17 @@ def random_tree(n_tips: int, rng: np.random.Generator, ultrametric: bool = False
         length[:n_tips] += rng.uniform(0, 1.0, n_tips)
     length[-1] = root_edge
     return FlatTree(parent, length, tuple(f"s{i}" for i in range(n_tips)))
+
+
+def shared_path_cov(tree: FlatTree) -> np.ndarray:
+    """C_ij = length of the path tips i and j share from the root (root edge included):
+    the Brownian-motion covariance at unit rate, built here from the parent array alone."""
+    n = tree.n_tips
+    paths = []
+    for i in range(n):
+        v, p = i, set()
+        while v != -1:
+            p.add(v)
+            v = tree.parent[v]
+        paths.append(p)
+    return np.array([[sum(tree.length[v] for v in paths[i] & paths[j]) for j in range(n)] for i in range(n)])

@@ -9,31 +9,13 @@ import pytest
 from cladewise.data.trees import FlatTree
 from cladewise.errors import InputError
 from cladewise.evaluation.blomberg import blomberg_k, k_statistics
-from treegen import random_tree
-
-
-def dense_cov(tree: FlatTree) -> np.ndarray:
-    """C_ij = length of the path shared by tips i and j from the root (plus the root
-    edge), built here from the parent array alone."""
-    n = tree.n_tips
-    paths = []
-    for i in range(n):
-        nodes, v = set(), i
-        while tree.parent[v] != -1:
-            nodes.add(v)
-            v = tree.parent[v]
-        paths.append(nodes)
-    C = np.empty((n, n))
-    for i in range(n):
-        for j in range(n):
-            C[i, j] = sum(tree.length[v] for v in paths[i] & paths[j]) + tree.length[tree.root]
-    return C
+from treegen import random_tree, shared_path_cov
 
 
 def dense_k(tree: FlatTree, y: np.ndarray) -> float:
     """Blomberg, Garland & Ives 2003 (Evolution 57:717-745), K as the observed over the
     Brownian-motion-expected ratio of MSE0 to MSE, with the full C matrix (numpy)."""
-    C = dense_cov(tree)
+    C = shared_path_cov(tree)
     n = len(y)
     Ci = np.linalg.inv(C)
     one = np.ones(n)
@@ -75,7 +57,7 @@ def test_k_with_missing_values_uses_the_species_with_values():
     y[[2, 7, 14]] = np.nan
     res = blomberg_k(tree, y, permutations=0)
     have = ~np.isnan(y)
-    C = dense_cov(tree)[np.ix_(have, have)]
+    C = shared_path_cov(tree)[np.ix_(have, have)]
     n = have.sum()
     Ci, one, yy = np.linalg.inv(C), np.ones(n), y[have]
     a = one @ Ci @ yy / (one @ Ci @ one)
@@ -100,7 +82,7 @@ def test_k_near_one_under_brownian_motion_and_near_zero_without_structure():
     # loosely on the 100-tip tree and tightly on the same topology with short terminal branches.
     rng = np.random.default_rng(2024)
     tree = random_tree(100, rng, ultrametric=True)
-    C = dense_cov(tree)
+    C = shared_path_cov(tree)
     k_bm, _ = k_statistics(tree, _simulate(tree, C, 2000, rng))
     se = k_bm.std() / np.sqrt(k_bm.size)
     assert abs(k_bm.mean() - 1.0) < 0.08, (k_bm.mean(), se)
@@ -111,7 +93,7 @@ def test_k_near_one_under_brownian_motion_and_near_zero_without_structure():
     short = FlatTree(tree.parent, ln, tree.tip_names)
     k_short, _ = k_statistics(short, rng.normal(size=(100, 2000)))
     assert k_short.mean() < 0.05, k_short.mean()
-    k_short_bm, _ = k_statistics(short, _simulate(short, dense_cov(short), 2000, rng))
+    k_short_bm, _ = k_statistics(short, _simulate(short, shared_path_cov(short), 2000, rng))
     assert abs(k_short_bm.mean() - 1.0) < 0.08, k_short_bm.mean()
 
 
@@ -122,7 +104,7 @@ def test_permutation_p_values():
     # Statistical Hypotheses, ch. 15; from memory)
     rng = np.random.default_rng(7)
     tree = random_tree(40, rng, ultrametric=True)
-    C = dense_cov(tree)
+    C = shared_path_cov(tree)
     Y = _simulate(tree, C, 30, rng)
     p_bm = np.array([blomberg_k(tree, Y[:, s], permutations=199, seed=s).p_value for s in range(30)])
     assert np.mean(p_bm <= 0.05) > 0.8

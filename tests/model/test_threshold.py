@@ -17,7 +17,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import integrate
 from scipy.stats import multivariate_normal, norm
-from treegen import random_tree
+from treegen import random_tree, shared_path_cov
 
 from cladewise.config.analysis import MODEL
 from cladewise.config.tables import read_table
@@ -160,19 +160,6 @@ def test_middle_state_of_an_ordered_trait_integrates_to_its_interval_probability
 
 
 # --------------------------------------------------------------------------- LOO
-def _dense_cov(tree: FlatTree) -> np.ndarray:
-    # shared root-to-tip path length of every pair of tips, written out here
-    n = tree.n_tips
-    paths = []
-    for i in range(n):
-        v, p = i, set()
-        while v != -1:
-            p.add(v)
-            v = tree.parent[v]
-        paths.append(p)
-    return np.array([[sum(tree.length[v] for v in paths[i] & paths[j]) for j in range(n)] for i in range(n)])
-
-
 def test_loo_term_is_conditional_density_times_state_probability(rng):
     # log p(x_i | rest) + log P(state_i | x_i, rest), rest = other species' values and
     # liabilities, by dense Gaussian conditioning on vec(Y) ~ N(1 (x) mu, C (x) R)
@@ -192,7 +179,7 @@ def test_loo_term_is_conditional_density_times_state_probability(rng):
     d = {"lengths": tree.length[None], "y": y[None], "R": R[None], "E": np.zeros((1, 2, 2)),
          "err_var": np.zeros((1, 7, 2)), "mu": mu[None], "log_scale": np.zeros((1, 7))}
     got = pointwise_loglik_discrete(built, d, np.zeros((1, 1)))[0]
-    C = _dense_cov(tree)
+    C = shared_path_cov(tree)
     full = np.kron(C, R)
     vec_y, vec_o = y.ravel(), obs.ravel()
     for i in range(7):
@@ -291,7 +278,7 @@ def test_loo_term_with_two_binary_traits_uses_the_joint_orthant_probability(rng)
     d = {"lengths": tree.length[None], "y": y[None], "R": R[None], "E": np.zeros((1, 3, 3)),
          "err_var": np.zeros((1, 5, 3)), "mu": mu[None], "log_scale": np.zeros((1, 5))}
     got = pointwise_loglik_discrete(built, d, np.zeros((1, 2)))[0]
-    full = np.kron(_dense_cov(tree), R)
+    full = np.kron(shared_path_cov(tree), R)
     i = 0
     mine = np.zeros(15, dtype=bool)
     mine[:3] = True

@@ -19,7 +19,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import integrate
 from scipy.stats import multivariate_normal, norm
-from treegen import random_tree
+from treegen import random_tree, shared_path_cov
 
 from cladewise.data.trees import FlatTree
 from cladewise.errors import InputError
@@ -28,19 +28,6 @@ from cladewise.model.build import ModelData, ModelSpec, build_model
 
 def star_tree(n: int) -> FlatTree:
     return FlatTree(np.array([n] * n + [-1]), np.r_[np.ones(n), 0.0], tuple(f"s{i}" for i in range(n)))
-
-
-def dense_cov(tree: FlatTree) -> np.ndarray:
-    # shared root-to-tip path length of every pair of tips, written out here
-    n = tree.n_tips
-    paths = []
-    for i in range(n):
-        v, p = i, set()
-        while v != -1:
-            p.add(v)
-            v = tree.parent[v]
-        paths.append(p)
-    return np.array([[sum(tree.length[v] for v in paths[i] & paths[j]) for j in range(n)] for i in range(n)])
 
 
 def random_point(built, rng, scale=0.4):
@@ -75,7 +62,7 @@ def tree_loglik(built):
 def dense_loglik(tree, inputs, observed):
     """log N(observed cells | mean, C (x) R + I (x) E + errors), written densely."""
     n, k = observed.shape
-    C = dense_cov(tree.with_lengths(inputs["lengths"]))
+    C = shared_path_cov(tree.with_lengths(inputs["lengths"]))
     err = inputs["err_var"]
     if err.ndim == 2:
         err = err[:, :, None] * np.eye(k)[None]
@@ -171,7 +158,7 @@ def test_species_covariance_splits_the_liability_variance_and_predicts_with_it(r
     built = build_model(data, ModelSpec(traits=["x", "s"], discrete={"s": ["n", "y"]}, species_covariance=True))
     point = random_point(built, rng)
     inputs = built.engine_function()(point)
-    t = float(np.mean(np.diag(dense_cov(tree))))
+    t = float(np.mean(np.diag(shared_path_cov(tree))))
     # the liability's total tip variance is 1: phylogenetic share + species-level rest
     assert np.isclose(inputs["R"][1, 1] * t + inputs["E"][1, 1], 1.0, rtol=1e-10)
     assert np.isclose(inputs["R"][1, 1] * t, point["liability_share"][0], rtol=1e-10)
@@ -184,7 +171,7 @@ def test_species_covariance_splits_the_liability_variance_and_predicts_with_it(r
     from cladewise.evaluation.discrete import _conditionals
 
     m, c = _conditionals(built, built.engine_function(extra=("node_scale", "E_species"))(point), np.array([2]))
-    C = dense_cov(tree)
+    C = shared_path_cov(tree)
     S = np.kron(C, inputs["R"]) + np.kron(np.eye(8), inputs["E"])
     o = obs.ravel()
     target = 2 * 2 + 1
