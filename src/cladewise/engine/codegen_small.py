@@ -167,20 +167,17 @@ def _logdet(c: Code, factors: list[str], out: str, absolute: bool) -> None:
     c.dedent()
 
 
-def ldl_inverse(c: Code, k: int, K: str, W: str, p: str, fail: str | None) -> list[str]:
-    """``W = K^-1`` (symmetric locals) by ``K = L D L'``; returns the names of ``D``.
+def ldl_factor(c: Code, k: int, K: str, p: str, fail: str | None) -> list[str]:
+    """``K = L D L'`` (symmetric locals ``K``; unit lower ``{p}L{i}{j}``, ``{p}D{j}``,
+    reciprocals ``{p}r{j}``); returns the names of ``D``.
 
     ``fail``: a statement run when a pivot is not positive (``K`` not positive definite).
     """
     D = [f"{p}D{j}" for j in range(k)]
-
-    def L(i: int, j: int) -> str:
-        return f"{p}L{i}{j}"
-
     for j in range(k):
         for l in range(j):
-            c(f"{p}w{j}{l} = {L(j, l)} * {D[l]}")
-        c(f"{D[j]} = {sym(K, j, j)}" + "".join(f" - {L(j, l)} * {p}w{j}{l}" for l in range(j)))
+            c(f"{p}w{j}{l} = {p}L{j}{l} * {D[l]}")
+        c(f"{D[j]} = {sym(K, j, j)}" + "".join(f" - {p}L{j}{l} * {p}w{j}{l}" for l in range(j)))
         if fail:
             c(f"if not {D[j]} > 0.0:")
             c.indent()
@@ -188,16 +185,21 @@ def ldl_inverse(c: Code, k: int, K: str, W: str, p: str, fail: str | None) -> li
             c.dedent()
         c(f"{p}r{j} = 1.0 / {D[j]}")
         for i in range(j + 1, k):
-            c(f"{L(i, j)} = ({sym(K, i, j)}" + "".join(f" - {L(i, l)} * {p}w{j}{l}" for l in range(j))
+            c(f"{p}L{i}{j} = ({sym(K, i, j)}" + "".join(f" - {p}L{i}{l} * {p}w{j}{l}" for l in range(j))
               + f") * {p}r{j}")
+    return D
 
-    # inverse of the unit lower factor
-    def Li(i: int, j: int) -> str:
+
+def ldl_inverse(c: Code, k: int, K: str, W: str, p: str, fail: str | None) -> list[str]:
+    """``W = K^-1`` (symmetric locals) by :func:`ldl_factor`; returns the names of ``D``."""
+    D = ldl_factor(c, k, K, p, fail)
+
+    def Li(i: int, j: int) -> str:  # inverse of the unit lower factor
         return "1.0" if i == j else f"{p}M{i}{j}"
 
     for j in range(k):
         for i in range(j + 1, k):
-            c(f"{Li(i, j)} = -({L(i, j)}" + "".join(f" + {L(i, l)} * {Li(l, j)}" for l in range(j + 1, i))
+            c(f"{Li(i, j)} = -({p}L{i}{j}" + "".join(f" + {p}L{i}{l} * {Li(l, j)}" for l in range(j + 1, i))
               + ")")
     for a, b in tri(k):
         terms = []
@@ -210,6 +212,53 @@ def ldl_inverse(c: Code, k: int, K: str, W: str, p: str, fail: str | None) -> li
             terms.append(x)
         c(f"{sym(W, a, b)} = " + " + ".join(terms))
     return D
+
+
+def absorb_factored(c: Code, k: int, J: str, r: str, F, p: str, H: str, g: str,
+                    scale: str | None = None) -> list[str]:
+    """:func:`~cladewise.engine.kernels.absorb` of ``(J, r)`` with ``N(0, s F F')``, ``F`` lower.
+
+    With ``U = J F`` and ``A = I + s F' U`` (symmetric, >= I: no pivoting needed),
+    ``H = J - s U A^-1 U'``, ``g = r - s U A^-1 F' r`` and ``log det(I + s J F F') =
+    log det A`` (Woodbury, Sylvester). Writes the locals ``H`` (symmetric) and ``g``;
+    returns the names of ``A``'s ``L D L'`` pivots. ``F(i, j)`` names entry ``i >= j``.
+    """
+    sc = f"{scale} * " if scale else ""
+    for i in range(k):
+        for j in range(k):
+            c(f"{p}U{i}_{j} = " + _dot([(sym(J, i, l), F(l, j)) for l in range(j, k)]))
+    for a, b in tri(k):
+        c(f"{sym(p + 'A', a, b)} = " + ("1.0 + " if a == b else "") + sc + "("
+          + _dot([(F(l, a), f"{p}U{l}_{b}") for l in range(a, k)]) + ")")
+    D = ldl_factor(c, k, p + "A", p, None)
+    for i in range(k):
+        for j in range(k):
+            c(f"{p}Y{i}_{j} = {p}U{i}_{j}" + "".join(f" - {p}Y{i}_{l} * {p}L{j}{l}" for l in range(j)))
+    for i in range(k):
+        for j in range(k):
+            c(f"{p}Z{i}_{j} = {p}Y{i}_{j} * {p}r{j}")
+    for a, b in tri(k):
+        c(f"{sym(H, a, b)} = {sym(J, a, b)} - {sc}(" + _dot([(f"{p}Z{a}_{l}", f"{p}Y{b}_{l}") for l in range(k)])
+          + ")")
+    for i in range(k):
+        c(f"{p}z{i} = " + _dot([(F(l, i), f"{r}{l}") for l in range(i, k)]))
+    for i in range(k):
+        c(f"{p}x{i} = {p}z{i}" + "".join(f" - {p}L{i}{l} * {p}x{l}" for l in range(i)))
+    for i in range(k):
+        c(f"{g}{i} = {r}{i} - {sc}(" + _dot([(f"{p}Z{i}_{l}", f"{p}x{l}") for l in range(k)]) + ")")
+    return D
+
+
+def chol_lower(c: Code, k: int, K, out) -> None:
+    """Cholesky factor ``F`` (``F F' = K``) of a positive semidefinite ``K``: a pivot that
+    is not positive gives a zero column (exact for the zero matrix)."""
+    for j in range(k):
+        c(f"fd = {K(j, j)}" + "".join(f" - {out(j, l)} * {out(j, l)}" for l in range(j)))
+        c(f"{out(j, j)} = math.sqrt(fd) if fd > 0.0 else 0.0")
+        c(f"fr = 1.0 / {out(j, j)} if fd > 0.0 else 0.0")
+        for i in range(j + 1, k):
+            c(f"{out(i, j)} = ({K(i, j)}" + "".join(f" - {out(i, l)} * {out(j, l)}" for l in range(j))
+              + ") * fr")
 
 
 def matvec_sym(k: int, M: str, v: str, i: int) -> str:
@@ -247,7 +296,8 @@ from cladewise.engine.kernels import (
     prefetch_row,
 )
 
-_JIT = {{"cache": True, "nogil": True}}
+# contract: let LLVM fuse a * b + c into one instruction (rounding differs by an ulp)
+_JIT = {{"cache": True, "nogil": True, "fastmath": {{"contract"}}}}
 K = {k}
 B = {B}
 '''
@@ -285,6 +335,14 @@ def _upward(c: Code, k: int) -> None:
     c("store = Sq.shape[0] > 0")
     for a, b in tri(k):
         c(f"{sym('E', a, b)} = E[{b}, {a}]")
+    c("# Cholesky factor of each regime's R: V = t F F' on a branch")
+    c(f"FR = np.empty((R.shape[0], {T}))")
+    c("for rg in range(R.shape[0]):")
+    c.indent()
+    chol_lower(c, k, lambda i, j: f"R[rg, {i}, {j}]", lambda i, j: f"F{i}{j}")
+    for n, (a, b) in enumerate(tri(k)):
+        c(f"FR[rg, {n}] = F{b}{a}")
+    c.dedent()
     c("for w in range(n - ntip):")
     c(f"    for i in range({B}):")
     c("        Pm[w, i] = 0.0")
@@ -319,23 +377,19 @@ def _upward(c: Code, k: int) -> None:
     load_row(c, k, "Pm", "w", 0, "J", "h")
     c("if t != 0.0:")
     c.indent()
-    load_R(c, k)
+    for n, (a, b) in enumerate(tri(k)):
+        c(f"F{b}{a} = FR[rg, {n}]")
     for i in range(k):
-        for j in range(k):
-            c(f"V{i}_{j} = t * R{i}_{j}")
-    A = [[("1.0 + " if i == j else "") + "(" + _dot([(sym("J", i, l), f"V{l}_{j}") for l in range(k)]) + ")"
-          for j in range(k)] for i in range(k)]
-    rhs = [[sym("J", i, j) for i in range(k)] for j in range(k)] + [[f"h{i}" for i in range(k)]]
-    sol = gauss(c, A, rhs, "u", "ld")
-    g = sol[k]
-    c("quad = " + " + ".join(f"{g[i]} * (" + _dot([(f"V{i}_{j}", f"h{j}") for j in range(k)]) + ")"
-                             for i in range(k)))
+        c(f"r{i} = h{i}")
+    D = absorb_factored(c, k, "J", "r", lambda i, j: f"F{i}{j}", "u", "H", "g", scale="t")
+    _logdet(c, D, "ld", absolute=False)
+    c("quad = t * (" + " + ".join(
+        f"uz{i} * (" + _dot([(f"F{l}{i}", f"g{l}") for l in range(i, k)]) + ")" for i in range(k)) + ")")
     c("total += -0.5 * ld + 0.5 * quad")
     for a, b in tri(k):
-        val = sol[b][a] if a == b else f"0.5 * ({sol[b][a]} + {sol[a][b]})"
-        c(f"{sym('J', a, b)} = {val}")
+        c(f"{sym('J', a, b)} = {sym('H', a, b)}")
     for i in range(k):
-        c(f"h{i} = {g[i]}")
+        c(f"h{i} = g{i}")
     c.dedent()
     c.dedent()
     c("if v + PREFETCH_AHEAD < n - 1:")
