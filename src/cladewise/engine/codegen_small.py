@@ -418,7 +418,38 @@ def _upward(c: Code, k: int) -> None:
     c.dedent()
     c()
     c()
+def absorb_info(c: Code, k: int, J: str, r: str, Lam: str, p: str, H: str, g: str) -> list[str]:
+    """:func:`~cladewise.engine.kernels.absorb` of ``(J, r)`` with ``N(0, Lam^-1)``.
+
+    With ``A = Lam + J`` (symmetric positive definite: no pivoting), ``H = J - J A^-1 J``
+    and ``g = r - J A^-1 r`` (Woodbury). Leaves ``A = L D L'`` in ``{p}L``, ``{p}D``,
+    ``{p}r`` and ``J L^-T`` in ``{p}Y``; returns the names of ``D``.
+    """
+    for a, b in tri(k):
+        c(f"{sym(p + 'A', a, b)} = {sym(Lam, a, b)} + {sym(J, a, b)}")
+    D = ldl_factor(c, k, p + "A", p, None)
+    for i in range(k):
+        for j in range(k):
+            c(f"{p}Y{i}_{j} = {sym(J, i, j)}" + "".join(f" - {p}Y{i}_{l} * {p}L{j}{l}" for l in range(j)))
+    for i in range(k):
+        for j in range(k):
+            c(f"{p}Z{i}_{j} = {p}Y{i}_{j} * {p}r{j}")
+    for a, b in tri(k):
+        c(f"{sym(H, a, b)} = {sym(J, a, b)} - (" + _dot([(f"{p}Z{a}_{l}", f"{p}Y{b}_{l}") for l in range(k)]) + ")")
+    for i in range(k):
+        c(f"{p}x{i} = {r}{i}" + "".join(f" - {p}L{i}{l} * {p}x{l}" for l in range(i)))
+    for i in range(k):
+        c(f"{g}{i} = {r}{i} - (" + _dot([(f"{p}Z{i}_{l}", f"{p}x{l}") for l in range(k)]) + ")")
+    return D
+
+
 def _downward(c: Code, k: int) -> None:
+    """The downward pass keeps an internal node's outside distribution in information form
+    ``(Lam, eta)`` (``Pm[w, B:2B]``): conditioning on the other children's messages is then
+    a sum, and one ``L D L'`` inverse gives a child's outside moment form. A node whose
+    outside is a point mass (the root without a root edge, and nodes below it through
+    zero-length branches) has ``Pm[w, 2B] = 1`` and its mean in place of ``eta``.
+    """
     T = k * (k + 1) // 2
     B = T + k
     c("@njit(**_JIT)")
@@ -446,6 +477,7 @@ def _downward(c: Code, k: int) -> None:
     c("rg = regime[c]")
     c("if c == root:")
     c.indent()
+    c("point = True")
     for i in range(k):
         c(f"m{i} = mu[{i}]")
     for a, b in tri(k):
@@ -458,21 +490,30 @@ def _downward(c: Code, k: int) -> None:
     c("p = parent[c] - ntip")
     c("# the other children's messages: before c (upward pass) plus after c (running sum)")
     load_row(c, k, "Sq", "c", B, "S", "s", plus=("Pm", "p", 0))
-    load_row(c, k, "Pm", "p", B, "P", "n")
     c(f"for i in range({B}):")
     c("    Pm[p, i] += Sq[c, i]")
-    c("# condition the parent's outside N(n, P) on them: (I + P S) [Q | m] = [P | n + P s]")
-    A = [[("1.0 + " if i == j else "") + "(" + _dot([(sym("P", i, l), sym("S", l, j)) for l in range(k)]) + ")"
-          for j in range(k)] for i in range(k)]
-    rhs = [[sym("P", i, j) for i in range(k)] for j in range(k)]
-    rhs.append([f"n{i} + " + matvec_sym(k, "P", "s", i) for i in range(k)])
-    sol = gauss(c, A, rhs, "c", None)
-    for a, b in tri(k):
-        val = sol[b][a] if a == b else f"0.5 * ({sol[b][a]} + {sol[a][b]})"
-        c(f"{sym('Q', a, b)} = {val}")
+    c(f"point = Pm[p, {2 * B}] != 0.0")
+    c("if point:")
+    c.indent()
     for i in range(k):
-        c(f"m{i} = {sol[k][i]}")
+        c(f"m{i} = Pm[p, {B + T + i}]")
+    for a, b in tri(k):
+        c(f"{sym('Q', a, b)} = 0.0")
     c.dedent()
+    c("else:")
+    c.indent()
+    c("# condition the parent's outside on them: information adds")
+    load_row(c, k, "Pm", "p", B, "C", "e")
+    for a, b in tri(k):
+        c(f"{sym('C', a, b)} += {sym('S', a, b)}")
+    for i in range(k):
+        c(f"e{i} += s{i}")
+    ldl_inverse(c, k, "C", "Q", "x", None)
+    for i in range(k):
+        c(f"m{i} = " + matvec_sym(k, "Q", "e", i))
+    c.dedent()
+    c.dedent()
+    c("point = point and t == 0.0")
     for a, b in tri(k):
         c(f"{sym('Q', a, b)} += t * R[rg, {b}, {a}]")
     c("if c < ntip:")
@@ -481,20 +522,19 @@ def _downward(c: Code, k: int) -> None:
     c("continue")
     c.dedent()
     c("w = c - ntip")
-    store_row(c, k, "Pm", "w", B, "Q", "m")
+    load_row(c, k, "Pm", "w", 0, "J", "h")
+    c("if point:")
+    c.indent()
+    c(f"Pm[w, {2 * B}] = 1.0")
+    for i in range(k):
+        c(f"Pm[w, {B + T + i}] = m{i}")
     c("if want_internal:")
     c.indent()
-    load_row(c, k, "Pm", "w", 0, "J", "h")
-    A = [[("1.0 + " if i == j else "") + "(" + _dot([(sym("J", i, l), sym("Q", l, j)) for l in range(k)]) + ")"
-          for j in range(k)] for i in range(k)]
-    rhs = [[sym("J", i, j) for i in range(k)] for j in range(k)]
-    rhs.append([f"h{i} - (" + matvec_sym(k, "J", "m", i) + ")" for i in range(k)])
-    sol = gauss(c, A, rhs, "d", None)
+    c("# absorbing into a point mass: H = J, g = h - J m")
     for a, b in tri(k):
-        val = sol[b][a] if a == b else f"0.5 * ({sol[b][a]} + {sol[a][b]})"
-        c(f"{sym('H', a, b)} = {val}")
+        c(f"{sym('H', a, b)} = {sym('J', a, b)}")
     for i in range(k):
-        c(f"g{i} = {sol[k][i]}")
+        c(f"g{i} = h{i} - (" + matvec_sym(k, "J", "m", i) + ")")
     c("if grad:")
     c.indent()
     _grad_terms(c, k, "g", "H")
@@ -506,7 +546,58 @@ def _downward(c: Code, k: int) -> None:
     c.dedent()
     c("if anc:")
     c.indent()
-    _anc_terms(c, k, "Q", "m", "g", "H")
+    for i in range(k):
+        c(f"anc_mean[c, {i}] = m{i}")
+        for j in range(k):
+            c(f"anc_cov[c, {i}, {j}] = 0.0")
+    c.dedent()
+    c.dedent()
+    c.dedent()
+    c("else:")
+    c.indent()
+    c(f"Pm[w, {2 * B}] = 0.0")
+    c("if t == 0.0 and c != root:")
+    c.indent()
+    c("# a zero-length branch: the outside information is the conditioned parent's")
+    for a, b in tri(k):
+        c(f"{sym('L', a, b)} = {sym('C', a, b)}")
+    for i in range(k):
+        c(f"l{i} = e{i}")
+    c.dedent()
+    c("else:")
+    c.indent()
+    ldl_inverse(c, k, "Q", "L", "y", None)
+    for i in range(k):
+        c(f"l{i} = " + matvec_sym(k, "L", "m", i))
+    c.dedent()
+    store_row(c, k, "Pm", "w", B, "L", "l")
+    c("if want_internal:")
+    c.indent()
+    for i in range(k):
+        c(f"r{i} = h{i} - (" + matvec_sym(k, "J", "m", i) + ")")
+    absorb_info(c, k, "J", "r", "L", "a", "H", "g")
+    c("if grad:")
+    c.indent()
+    _grad_terms(c, k, "g", "H")
+    c("if c == root:")
+    c.indent()
+    for i in range(k):
+        c(f"d_mu[{i}] = g{i}")
+    c.dedent()
+    c.dedent()
+    c("if anc:")
+    c.indent()
+    c("# posterior N((L + J)^-1 (l + h), (L + J)^-1)")
+    for a, b in tri(k):
+        c(f"{sym('aA', a, b)} = {sym('L', a, b)} + {sym('J', a, b)}")
+    ldl_inverse(c, k, "aA", "Z", "z", None)
+    for i in range(k):
+        c(f"u{i} = l{i} + h{i}")
+    for i in range(k):
+        c(f"anc_mean[c, {i}] = " + matvec_sym(k, "Z", "u", i))
+        for j in range(k):
+            c(f"anc_cov[c, {i}, {j}] = {sym('Z', i, j)}")
+    c.dedent()
     c.dedent()
     c.dedent()
     c(f"for i in range({B}):")
@@ -643,7 +734,7 @@ DRIVERS = '''
 def _run(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths, d_y, d_R,
          d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
     n = parent.shape[0]
-    Pm = np.empty((n - y.shape[0], 2 * B))
+    Pm = np.empty((n - y.shape[0], 2 * B + 1))
     Sq = np.empty((n, 2 * B))
     logp = upward_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
     if np.isfinite(logp):
@@ -732,7 +823,7 @@ def loo_logdens_draws_k{k}(parent, lengths, y, observed, R, regime, E, err, mu):
     ek = np.empty((K, K))
     ev = np.empty(K)
     eR = np.empty(R.shape[1:])
-    Pm = np.empty((n - ntip, 2 * B))
+    Pm = np.empty((n - ntip, 2 * B + 1))
     Sq = np.empty((n, 2 * B))
     for s in range(S):
         ln = lengths[s if lengths.shape[0] > 1 else 0]
