@@ -55,8 +55,11 @@ def _regime_args(case, n_regimes=1, seed=0):
 
 @pytest.mark.parametrize("k", FAST_K + SLOW_K)
 @pytest.mark.parametrize("n_regimes", [1, 3])
-def test_compact_equals_general_kernels(k, n_regimes):
-    case = _case(100 + k, k)
+@pytest.mark.parametrize("root_edge", [True, False])
+def test_compact_equals_general_kernels(k, n_regimes, root_edge):
+    # without a root edge the root's outside is a point mass (mu), and so are the
+    # outsides of nodes below it through zero-length branches
+    case = _case(100 + k, k, root_edge=root_edge, zero_internal=0.4)
     args = _regime_args(case, n_regimes, seed=k)
     gen = importlib.import_module(f"cladewise.engine.kernels_k{k}")
     general = kernels.value_and_grad_regimes_kernel(*args)
@@ -71,9 +74,10 @@ def test_compact_equals_general_kernels(k, n_regimes):
 
 
 @pytest.mark.parametrize("k", FAST_K + SLOW_K)
-def test_compact_matches_scipy_dense(k):
+@pytest.mark.parametrize("root_edge", [True, False])
+def test_compact_matches_scipy_dense(k, root_edge):
     # value, leave-one-out predictives and ancestral states against dense scipy
-    case = _case(200 + k, k)
+    case = _case(200 + k, k, root_edge=root_edge)
     assert loglik(**case) == pytest.approx(dense.loglik(**case), rel=1e-8)
     mean, cov = loo_conditionals(**case)
     dmean, dcov, _ = dense.loo_conditionals(**case)

@@ -289,6 +289,27 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
         d_err[:] = 0.0
         d_mu[:] = 0.0
     dRs = np.zeros((R.shape[0], 6))
+    # Cholesky factor of each regime's R: V = t F F' on a branch
+    FR = np.empty((R.shape[0], 6))
+    for rg in range(R.shape[0]):
+        fd = R[rg, 0, 0]
+        F00 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F00 if fd > 0.0 else 0.0
+        F10 = (R[rg, 1, 0]) * fr
+        F20 = (R[rg, 2, 0]) * fr
+        fd = R[rg, 1, 1] - F10 * F10
+        F11 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F11 if fd > 0.0 else 0.0
+        F21 = (R[rg, 2, 1] - F20 * F10) * fr
+        fd = R[rg, 2, 2] - F20 * F20 - F21 * F21
+        F22 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F22 if fd > 0.0 else 0.0
+        FR[rg, 0] = F00
+        FR[rg, 1] = F10
+        FR[rg, 2] = F20
+        FR[rg, 3] = F11
+        FR[rg, 4] = F21
+        FR[rg, 5] = F22
     root = n - 1
     for c in range(root, -1, -1):
         t = lengths[c]
@@ -351,6 +372,9 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 e0 += s0
                 e1 += s1
                 e2 += s2
+        if c < ntip:
+            # a tip's outside moment form
+            if not point:
                 xD0 = C00
                 xr0 = 1.0 / xD0
                 xL10 = (C01) * xr0
@@ -375,14 +399,12 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 m0 = Q00 * e0 + Q01 * e1 + Q02 * e2
                 m1 = Q01 * e0 + Q11 * e1 + Q12 * e2
                 m2 = Q02 * e0 + Q12 * e1 + Q22 * e2
-        point = point and t == 0.0
-        Q00 += t * R[rg, 0, 0]
-        Q01 += t * R[rg, 1, 0]
-        Q02 += t * R[rg, 2, 0]
-        Q11 += t * R[rg, 1, 1]
-        Q12 += t * R[rg, 2, 1]
-        Q22 += t * R[rg, 2, 2]
-        if c < ntip:
+            Q00 += t * R[rg, 0, 0]
+            Q01 += t * R[rg, 1, 0]
+            Q02 += t * R[rg, 2, 0]
+            Q11 += t * R[rg, 1, 1]
+            Q12 += t * R[rg, 2, 1]
+            Q22 += t * R[rg, 2, 2]
             Sq[c, 0] = Q00
             Sq[c, 1] = Q01
             Sq[c, 2] = Q02
@@ -403,7 +425,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
         h0 = Pm[w, 6]
         h1 = Pm[w, 7]
         h2 = Pm[w, 8]
-        if point:
+        if point and t == 0.0:
             Pm[w, 18] = 1.0
             Pm[w, 15] = m0
             Pm[w, 16] = m1
@@ -452,18 +474,14 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                     anc_cov[c, 2, 2] = 0.0
         else:
             Pm[w, 18] = 0.0
-            if t == 0.0 and c != root:
-                # a zero-length branch: the outside information is the conditioned parent's
-                L00 = C00
-                L01 = C01
-                L02 = C02
-                L11 = C11
-                L12 = C12
-                L22 = C22
-                l0 = e0
-                l1 = e1
-                l2 = e2
-            else:
+            if point:
+                # below a point mass m: outside N(m, t R)
+                Q00 = t * R[rg, 0, 0]
+                Q01 = t * R[rg, 1, 0]
+                Q02 = t * R[rg, 2, 0]
+                Q11 = t * R[rg, 1, 1]
+                Q12 = t * R[rg, 2, 1]
+                Q22 = t * R[rg, 2, 2]
                 yD0 = Q00
                 yr0 = 1.0 / yD0
                 yL10 = (Q01) * yr0
@@ -488,6 +506,85 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 l0 = L00 * m0 + L01 * m1 + L02 * m2
                 l1 = L01 * m0 + L11 * m1 + L12 * m2
                 l2 = L02 * m0 + L12 * m1 + L22 * m2
+            elif t == 0.0:
+                # a zero-length branch: the outside information is the conditioned parent's
+                L00 = C00
+                L01 = C01
+                L02 = C02
+                L11 = C11
+                L12 = C12
+                L22 = C22
+                l0 = e0
+                l1 = e1
+                l2 = e2
+            else:
+                # push the conditioned parent's information across the branch (V = t F F')
+                F00 = FR[rg, 0]
+                F10 = FR[rg, 1]
+                F20 = FR[rg, 2]
+                F11 = FR[rg, 3]
+                F21 = FR[rg, 4]
+                F22 = FR[rg, 5]
+                vU0_0 = C00 * F00 + C01 * F10 + C02 * F20
+                vU0_1 = C01 * F11 + C02 * F21
+                vU0_2 = C02 * F22
+                vU1_0 = C01 * F00 + C11 * F10 + C12 * F20
+                vU1_1 = C11 * F11 + C12 * F21
+                vU1_2 = C12 * F22
+                vU2_0 = C02 * F00 + C12 * F10 + C22 * F20
+                vU2_1 = C12 * F11 + C22 * F21
+                vU2_2 = C22 * F22
+                vA00 = 1.0 + t * (F00 * vU0_0 + F10 * vU1_0 + F20 * vU2_0)
+                vA01 = t * (F00 * vU0_1 + F10 * vU1_1 + F20 * vU2_1)
+                vA02 = t * (F00 * vU0_2 + F10 * vU1_2 + F20 * vU2_2)
+                vA11 = 1.0 + t * (F11 * vU1_1 + F21 * vU2_1)
+                vA12 = t * (F11 * vU1_2 + F21 * vU2_2)
+                vA22 = 1.0 + t * (F22 * vU2_2)
+                vD0 = vA00
+                vr0 = 1.0 / vD0
+                vL10 = (vA01) * vr0
+                vL20 = (vA02) * vr0
+                vw10 = vL10 * vD0
+                vD1 = vA11 - vL10 * vw10
+                vr1 = 1.0 / vD1
+                vL21 = (vA12 - vL20 * vw10) * vr1
+                vw20 = vL20 * vD0
+                vw21 = vL21 * vD1
+                vD2 = vA22 - vL20 * vw20 - vL21 * vw21
+                vr2 = 1.0 / vD2
+                vY0_0 = vU0_0
+                vY0_1 = vU0_1 - vY0_0 * vL10
+                vY0_2 = vU0_2 - vY0_0 * vL20 - vY0_1 * vL21
+                vY1_0 = vU1_0
+                vY1_1 = vU1_1 - vY1_0 * vL10
+                vY1_2 = vU1_2 - vY1_0 * vL20 - vY1_1 * vL21
+                vY2_0 = vU2_0
+                vY2_1 = vU2_1 - vY2_0 * vL10
+                vY2_2 = vU2_2 - vY2_0 * vL20 - vY2_1 * vL21
+                vZ0_0 = vY0_0 * vr0
+                vZ0_1 = vY0_1 * vr1
+                vZ0_2 = vY0_2 * vr2
+                vZ1_0 = vY1_0 * vr0
+                vZ1_1 = vY1_1 * vr1
+                vZ1_2 = vY1_2 * vr2
+                vZ2_0 = vY2_0 * vr0
+                vZ2_1 = vY2_1 * vr1
+                vZ2_2 = vY2_2 * vr2
+                L00 = C00 - t * (vZ0_0 * vY0_0 + vZ0_1 * vY0_1 + vZ0_2 * vY0_2)
+                L01 = C01 - t * (vZ0_0 * vY1_0 + vZ0_1 * vY1_1 + vZ0_2 * vY1_2)
+                L02 = C02 - t * (vZ0_0 * vY2_0 + vZ0_1 * vY2_1 + vZ0_2 * vY2_2)
+                L11 = C11 - t * (vZ1_0 * vY1_0 + vZ1_1 * vY1_1 + vZ1_2 * vY1_2)
+                L12 = C12 - t * (vZ1_0 * vY2_0 + vZ1_1 * vY2_1 + vZ1_2 * vY2_2)
+                L22 = C22 - t * (vZ2_0 * vY2_0 + vZ2_1 * vY2_1 + vZ2_2 * vY2_2)
+                vz0 = F00 * e0 + F10 * e1 + F20 * e2
+                vz1 = F11 * e1 + F21 * e2
+                vz2 = F22 * e2
+                vx0 = vz0
+                vx1 = vz1 - vL10 * vx0
+                vx2 = vz2 - vL20 * vx0 - vL21 * vx1
+                l0 = e0 - t * (vZ0_0 * vx0 + vZ0_1 * vx1 + vZ0_2 * vx2)
+                l1 = e1 - t * (vZ1_0 * vx0 + vZ1_1 * vx1 + vZ1_2 * vx2)
+                l2 = e2 - t * (vZ2_0 * vx0 + vZ2_1 * vx1 + vZ2_2 * vx2)
             Pm[w, 9] = L00
             Pm[w, 10] = L01
             Pm[w, 11] = L02
@@ -498,9 +595,6 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
             Pm[w, 16] = l1
             Pm[w, 17] = l2
             if want_internal:
-                r0 = h0 - (J00 * m0 + J01 * m1 + J02 * m2)
-                r1 = h1 - (J01 * m0 + J11 * m1 + J12 * m2)
-                r2 = h2 - (J02 * m0 + J12 * m1 + J22 * m2)
                 aA00 = L00 + J00
                 aA01 = L01 + J01
                 aA02 = L02 + J02
@@ -543,12 +637,18 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 H11 = J11 - (aZ1_0 * aY1_0 + aZ1_1 * aY1_1 + aZ1_2 * aY1_2)
                 H12 = J12 - (aZ1_0 * aY2_0 + aZ1_1 * aY2_1 + aZ1_2 * aY2_2)
                 H22 = J22 - (aZ2_0 * aY2_0 + aZ2_1 * aY2_1 + aZ2_2 * aY2_2)
-                ax0 = r0
-                ax1 = r1 - aL10 * ax0
-                ax2 = r2 - aL20 * ax0 - aL21 * ax1
-                g0 = r0 - (aZ0_0 * ax0 + aZ0_1 * ax1 + aZ0_2 * ax2)
-                g1 = r1 - (aZ1_0 * ax0 + aZ1_1 * ax1 + aZ1_2 * ax2)
-                g2 = r2 - (aZ2_0 * ax0 + aZ2_1 * ax1 + aZ2_2 * ax2)
+                ax0 = h0 + l0
+                ax1 = h1 + l1 - aL10 * ax0
+                ax2 = h2 + l2 - aL20 * ax0 - aL21 * ax1
+                ax0 *= ar0
+                ax1 *= ar1
+                ax2 *= ar2
+                ax2 = ax2
+                ax1 = ax1 - aL21 * ax2
+                ax0 = ax0 - aL10 * ax1 - aL20 * ax2
+                g0 = L00 * ax0 + L01 * ax1 + L02 * ax2 - l0
+                g1 = L01 * ax0 + L11 * ax1 + L12 * ax2 - l1
+                g2 = L02 * ax0 + L12 * ax1 + L22 * ax2 - l2
                 if grad:
                     G00 = 0.5 * (g0 * g0 - H00)
                     G01 = 0.5 * (g0 * g1 - H01)
