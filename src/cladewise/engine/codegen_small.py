@@ -184,27 +184,29 @@ def _upward(c: Code, k: int) -> None:
     c.dedent()
     c()
     c()
-def _downward(c: Code, k: int) -> None:
+def _downward(out: Code, k: int, task: str) -> None:
     """The downward pass keeps an internal node's outside distribution in information form
     ``(Lam, eta)`` (``Pm[w, B:2B]``): conditioning on the other children's messages is then
     a sum, and one ``L D L'`` inverse gives a child's outside moment form. A node whose
     outside is a point mass (the root without a root edge, and nodes below it through
     zero-length branches) has ``Pm[w, 2B] = 1`` and its mean in place of ``eta``.
+
+    One function per task (``grad``, ``loo``, ``anc``): the terms of the other tasks are
+    left out (``if False:`` blocks, which Python drops when it compiles the module), so
+    each compiles only its own code.
     """
     T = k * (k + 1) // 2
     B = T + k
+    c = Code()
+    c.level = out.level
     c("@njit(**_JIT)")
-    c(f"def downward_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,")
+    c(f"def downward_{task}_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq,")
     c("               d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,")
     c("               anc_mean, anc_cov):")
     c.indent()
-    c('"""Pass from the root to the tips after the upward pass, then the tips\' terms."""')
+    c(f'"""Pass from the root to the tips after the upward pass, then the tips\' terms ({task})."""')
     c("n = parent.shape[0]")
     c("ntip = y.shape[0]")
-    c("grad = (mode & MODE_GRAD) != 0")
-    c("anc = (mode & MODE_ANCESTRAL) != 0")
-    c("loo = (mode & MODE_LOO) != 0")
-    c("want_internal = grad or anc")
     c("if grad:")
     c.indent()
     for a in ("d_lengths", "d_y", "d_R", "d_E", "d_err", "d_mu"):
@@ -374,6 +376,13 @@ def _downward(c: Code, k: int) -> None:
     c.dedent()
     c()
     c()
+    flags = {"grad": task == "grad", "anc": task == "anc", "loo": task == "loo"}
+    flags["want_internal"] = flags["grad"] or flags["anc"]
+    for line in c.lines:
+        for name, on in flags.items():
+            if line.strip() == f"if {name}:":
+                line = line.replace(f"if {name}:", f"if {on}:")
+        out.lines.append(line)
 
 
 def _grad_terms(c: Code, k: int, g: str, H: str) -> None:
@@ -487,7 +496,8 @@ def module_source(k: int) -> str:
     T = k * (k + 1) // 2
     c = Code()
     _upward(c, k)
-    _downward(c, k)
+    for task in ("grad", "loo", "anc"):
+        _downward(c, k, task)
     return HEADER.format(k=k, B=T + k) + "\n\n" + c.text() + DRIVERS.format(k=k)
 
 

@@ -24,9 +24,6 @@ from numba import njit
 
 from cladewise.engine.kernels import (
     LOG_2PI,
-    MODE_ANCESTRAL,
-    MODE_GRAD,
-    MODE_LOO,
     PREFETCH_AHEAD,
     prefetch_row,
 )
@@ -40,17 +37,9 @@ B = {B}
 
 DRIVERS = '''
 @njit(**_JIT)
-def _run(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths, d_y, d_R,
-         d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
+def _workspace(parent, y):
     n = parent.shape[0]
-    Pm = np.empty((n - y.shape[0], 2 * B + 1))
-    Sq = np.empty((n, 2 * B))
-    logp = upward_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
-    if np.isfinite(logp):
-        downward_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
-                    d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
-                    anc_mean, anc_cov)
-    return logp
+    return np.empty((n - y.shape[0], 2 * B + 1)), np.empty((n, 2 * B))
 
 
 @njit(**_JIT)
@@ -74,9 +63,12 @@ def value_and_grad_k{k}(parent, lengths, y, observed, R, regime, E, err, mu):
     e1 = np.empty((0, K))
     e2 = np.empty((0, K, K))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_GRAD, d_lengths, d_y,
-                d_R, d_E, d_err, d_mu, e1, e2, e0, e1, e2)
-    if not np.isfinite(logp):
+    Pm, Sq = _workspace(parent, y)
+    logp = upward_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    if np.isfinite(logp):
+        downward_grad_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, d_lengths,
+                          d_y, d_R, d_E, d_err, d_mu, e1, e2, e0, e1, e2)
+    else:
         d_lengths[:] = 0.0
         d_y[:] = 0.0
         d_R[:] = 0.0
@@ -96,9 +88,12 @@ def loo_k{k}(parent, lengths, y, observed, R, regime, E, err, mu):
     e1 = np.empty((0, K))
     e2 = np.empty((0, K, K))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_LOO, e0, e1,
-                np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), loo_mean, loo_cov,
-                loo_logdens, e1, e2)
+    Pm, Sq = _workspace(parent, y)
+    logp = upward_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    if np.isfinite(logp):
+        downward_loo_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, e0, e1,
+                         np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), loo_mean, loo_cov,
+                         loo_logdens, e1, e2)
     return loo_mean, loo_cov, loo_logdens, logp
 
 
@@ -111,9 +106,12 @@ def ancestral_k{k}(parent, lengths, y, observed, R, regime, E, err, mu):
     e1 = np.empty((0, K))
     e2 = np.empty((0, K, K))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_ANCESTRAL, e0, e1,
-                np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), e1, e2, e0, anc_mean,
-                anc_cov)
+    Pm, Sq = _workspace(parent, y)
+    logp = upward_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    if np.isfinite(logp):
+        downward_anc_k{k}(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, e0, e1,
+                         np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), e1, e2, e0,
+                         anc_mean, anc_cov)
     return anc_mean, anc_cov, logp
 
 
@@ -132,8 +130,7 @@ def loo_logdens_draws_k{k}(parent, lengths, y, observed, R, regime, E, err, mu):
     ek = np.empty((K, K))
     ev = np.empty(K)
     eR = np.empty(R.shape[1:])
-    Pm = np.empty((n - ntip, 2 * B + 1))
-    Sq = np.empty((n, 2 * B))
+    Pm, Sq = _workspace(parent, y)
     for s in range(S):
         ln = lengths[s if lengths.shape[0] > 1 else 0]
         evs = err[s if err.shape[0] > 1 else 0]
@@ -142,7 +139,7 @@ def loo_logdens_draws_k{k}(parent, lengths, y, observed, R, regime, E, err, mu):
         if not np.isfinite(logp):
             out[s, :] = np.nan
             continue
-        downward_k{k}(parent, ln, y, observed, R[s], rgs, E[s], evs, mu[s], Pm, Sq, MODE_LOO,
-                    e0, e1, eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
+        downward_loo_k{k}(parent, ln, y, observed, R[s], rgs, E[s], evs, mu[s], Pm, Sq, e0, e1,
+                         eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
     return out
 '''

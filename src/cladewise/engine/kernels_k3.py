@@ -15,9 +15,6 @@ from numba import njit
 
 from cladewise.engine.kernels import (
     LOG_2PI,
-    MODE_ANCESTRAL,
-    MODE_GRAD,
-    MODE_LOO,
     PREFETCH_AHEAD,
     prefetch_row,
 )
@@ -271,17 +268,13 @@ def upward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
 
 
 @njit(**_JIT)
-def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
+def downward_grad_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq,
                d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                anc_mean, anc_cov):
-    """Pass from the root to the tips after the upward pass, then the tips' terms."""
+    """Pass from the root to the tips after the upward pass, then the tips' terms (grad)."""
     n = parent.shape[0]
     ntip = y.shape[0]
-    grad = (mode & MODE_GRAD) != 0
-    anc = (mode & MODE_ANCESTRAL) != 0
-    loo = (mode & MODE_LOO) != 0
-    want_internal = grad or anc
-    if grad:
+    if True:
         d_lengths[:] = 0.0
         d_y[:] = 0.0
         d_R[:] = 0.0
@@ -430,7 +423,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
             Pm[w, 15] = m0
             Pm[w, 16] = m1
             Pm[w, 17] = m2
-            if want_internal:
+            if True:
                 # absorbing into a point mass: H = J, g = h - J m
                 H00 = J00
                 H01 = J01
@@ -441,7 +434,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 g0 = h0 - (J00 * m0 + J01 * m1 + J02 * m2)
                 g1 = h1 - (J01 * m0 + J11 * m1 + J12 * m2)
                 g2 = h2 - (J02 * m0 + J12 * m1 + J22 * m2)
-                if grad:
+                if True:
                     G00 = 0.5 * (g0 * g0 - H00)
                     G01 = 0.5 * (g0 * g1 - H01)
                     G02 = 0.5 * (g0 * g2 - H02)
@@ -459,7 +452,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                         d_mu[0] = g0
                         d_mu[1] = g1
                         d_mu[2] = g2
-                if anc:
+                if False:
                     anc_mean[c, 0] = m0
                     anc_cov[c, 0, 0] = 0.0
                     anc_cov[c, 0, 1] = 0.0
@@ -594,7 +587,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
             Pm[w, 15] = l0
             Pm[w, 16] = l1
             Pm[w, 17] = l2
-            if want_internal:
+            if True:
                 aA00 = L00 + J00
                 aA01 = L01 + J01
                 aA02 = L02 + J02
@@ -649,7 +642,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 g0 = L00 * ax0 + L01 * ax1 + L02 * ax2 - l0
                 g1 = L01 * ax0 + L11 * ax1 + L12 * ax2 - l1
                 g2 = L02 * ax0 + L12 * ax1 + L22 * ax2 - l2
-                if grad:
+                if True:
                     G00 = 0.5 * (g0 * g0 - H00)
                     G01 = 0.5 * (g0 * g1 - H01)
                     G02 = 0.5 * (g0 * g2 - H02)
@@ -667,7 +660,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                         d_mu[0] = g0
                         d_mu[1] = g1
                         d_mu[2] = g2
-                if anc:
+                if False:
                     # posterior N((L + J)^-1 (l + h), (L + J)^-1)
                     aA00 = L00 + J00
                     aA01 = L01 + J01
@@ -743,7 +736,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
         X11 = err[c, 1, 1]
         X12 = 0.5 * (err[c, 1, 2] + err[c, 2, 1])
         X22 = err[c, 2, 2]
-        if loo:
+        if False:
             loo_mean[c, 0] = m0
             loo_mean[c, 1] = m1
             loo_mean[c, 2] = m2
@@ -761,11 +754,11 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
         o2 = observed[c, 2]
         q = (1 if o0 else 0) + (1 if o1 else 0) + (1 if o2 else 0)
         if q == 0:
-            if loo:
+            if False:
                 loo_logdens[c] = 0.0
-            if grad:
+            if True:
                 d_lengths[c] = 0.0
-            if anc:
+            if False:
                 anc_mean[c, 0] = m0
                 anc_mean[c, 1] = m1
                 anc_mean[c, 2] = m2
@@ -818,7 +811,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
         a0 = W00 * r0 + W01 * r1 + W02 * r2
         a1 = W01 * r0 + W11 * r1 + W12 * r2
         a2 = W02 * r0 + W12 * r1 + W22 * r2
-        if loo:
+        if False:
             if xD0 > 0.0 and xD1 > 0.0 and xD2 > 0.0:
                 pd = xD0 * xD1 * xD2
                 if pd > 1e-280 and pd < 1e280:
@@ -828,7 +821,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
             else:
                 ld = np.nan
             loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1 + a2 * r2) - 0.5 * ld - 0.5 * q * LOG_2PI
-        if grad:
+        if True:
             G00 = 0.5 * (a0 * a0 - W00)
             G01 = 0.5 * (a0 * a1 - W01)
             G02 = 0.5 * (a0 * a2 - W02)
@@ -864,7 +857,7 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 d_mu[0] = a0
                 d_mu[1] = a1
                 d_mu[2] = a2
-        if anc:
+        if False:
             anc_mean[c, 0] = m0 + P00 * a0 + P01 * a1 + P02 * a2
             anc_mean[c, 1] = m1 + P01 * a0 + P11 * a1 + P12 * a2
             anc_mean[c, 2] = m2 + P02 * a0 + P12 * a1 + P22 * a2
@@ -886,7 +879,1275 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
             anc_cov[c, 2, 0] = P02 - (Z2_0 * P00 + Z2_1 * P01 + Z2_2 * P02)
             anc_cov[c, 2, 1] = P12 - (Z2_0 * P01 + Z2_1 * P11 + Z2_2 * P12)
             anc_cov[c, 2, 2] = P22 - (Z2_0 * P02 + Z2_1 * P12 + Z2_2 * P22)
-    if grad:
+    if True:
+        for rg in range(R.shape[0]):
+            d_R[rg, 0, 0] += dRs[rg, 0]
+            d_R[rg, 0, 1] += dRs[rg, 1]
+            d_R[rg, 1, 0] += dRs[rg, 1]
+            d_R[rg, 0, 2] += dRs[rg, 2]
+            d_R[rg, 2, 0] += dRs[rg, 2]
+            d_R[rg, 1, 1] += dRs[rg, 3]
+            d_R[rg, 1, 2] += dRs[rg, 4]
+            d_R[rg, 2, 1] += dRs[rg, 4]
+            d_R[rg, 2, 2] += dRs[rg, 5]
+        d_E[0, 0] += dE00
+        d_E[0, 1] += dE01
+        d_E[1, 0] += dE01
+        d_E[0, 2] += dE02
+        d_E[2, 0] += dE02
+        d_E[1, 1] += dE11
+        d_E[1, 2] += dE12
+        d_E[2, 1] += dE12
+        d_E[2, 2] += dE22
+
+
+@njit(**_JIT)
+def downward_loo_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq,
+               d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
+               anc_mean, anc_cov):
+    """Pass from the root to the tips after the upward pass, then the tips' terms (loo)."""
+    n = parent.shape[0]
+    ntip = y.shape[0]
+    if False:
+        d_lengths[:] = 0.0
+        d_y[:] = 0.0
+        d_R[:] = 0.0
+        d_E[:] = 0.0
+        d_err[:] = 0.0
+        d_mu[:] = 0.0
+    dRs = np.zeros((R.shape[0], 6))
+    # Cholesky factor of each regime's R: V = t F F' on a branch
+    FR = np.empty((R.shape[0], 6))
+    for rg in range(R.shape[0]):
+        fd = R[rg, 0, 0]
+        F00 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F00 if fd > 0.0 else 0.0
+        F10 = (R[rg, 1, 0]) * fr
+        F20 = (R[rg, 2, 0]) * fr
+        fd = R[rg, 1, 1] - F10 * F10
+        F11 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F11 if fd > 0.0 else 0.0
+        F21 = (R[rg, 2, 1] - F20 * F10) * fr
+        fd = R[rg, 2, 2] - F20 * F20 - F21 * F21
+        F22 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F22 if fd > 0.0 else 0.0
+        FR[rg, 0] = F00
+        FR[rg, 1] = F10
+        FR[rg, 2] = F20
+        FR[rg, 3] = F11
+        FR[rg, 4] = F21
+        FR[rg, 5] = F22
+    root = n - 1
+    for c in range(root, -1, -1):
+        t = lengths[c]
+        rg = regime[c]
+        if c == root:
+            point = True
+            m0 = mu[0]
+            m1 = mu[1]
+            m2 = mu[2]
+            Q00 = 0.0
+            Q01 = 0.0
+            Q02 = 0.0
+            Q11 = 0.0
+            Q12 = 0.0
+            Q22 = 0.0
+        else:
+            if c >= PREFETCH_AHEAD:
+                prefetch_row(Pm, parent[c - PREFETCH_AHEAD] - ntip)
+            p = parent[c] - ntip
+            # the other children's messages: before c (upward pass) plus after c (running sum)
+            S00 = Sq[c, 9] + Pm[p, 0]
+            S01 = Sq[c, 10] + Pm[p, 1]
+            S02 = Sq[c, 11] + Pm[p, 2]
+            S11 = Sq[c, 12] + Pm[p, 3]
+            S12 = Sq[c, 13] + Pm[p, 4]
+            S22 = Sq[c, 14] + Pm[p, 5]
+            s0 = Sq[c, 15] + Pm[p, 6]
+            s1 = Sq[c, 16] + Pm[p, 7]
+            s2 = Sq[c, 17] + Pm[p, 8]
+            for i in range(9):
+                Pm[p, i] += Sq[c, i]
+            point = Pm[p, 18] != 0.0
+            if point:
+                m0 = Pm[p, 15]
+                m1 = Pm[p, 16]
+                m2 = Pm[p, 17]
+                Q00 = 0.0
+                Q01 = 0.0
+                Q02 = 0.0
+                Q11 = 0.0
+                Q12 = 0.0
+                Q22 = 0.0
+            else:
+                # condition the parent's outside on them: information adds
+                C00 = Pm[p, 9]
+                C01 = Pm[p, 10]
+                C02 = Pm[p, 11]
+                C11 = Pm[p, 12]
+                C12 = Pm[p, 13]
+                C22 = Pm[p, 14]
+                e0 = Pm[p, 15]
+                e1 = Pm[p, 16]
+                e2 = Pm[p, 17]
+                C00 += S00
+                C01 += S01
+                C02 += S02
+                C11 += S11
+                C12 += S12
+                C22 += S22
+                e0 += s0
+                e1 += s1
+                e2 += s2
+        if c < ntip:
+            # a tip's outside moment form
+            if not point:
+                xD0 = C00
+                xr0 = 1.0 / xD0
+                xL10 = (C01) * xr0
+                xL20 = (C02) * xr0
+                xw10 = xL10 * xD0
+                xD1 = C11 - xL10 * xw10
+                xr1 = 1.0 / xD1
+                xL21 = (C12 - xL20 * xw10) * xr1
+                xw20 = xL20 * xD0
+                xw21 = xL21 * xD1
+                xD2 = C22 - xL20 * xw20 - xL21 * xw21
+                xr2 = 1.0 / xD2
+                xM10 = -(xL10)
+                xM20 = -(xL20 + xL21 * xM10)
+                xM21 = -(xL21)
+                Q00 = xr0 + xr1 * xM10 * xM10 + xr2 * xM20 * xM20
+                Q01 = xr1 * xM10 + xr2 * xM20 * xM21
+                Q02 = xr2 * xM20
+                Q11 = xr1 + xr2 * xM21 * xM21
+                Q12 = xr2 * xM21
+                Q22 = xr2
+                m0 = Q00 * e0 + Q01 * e1 + Q02 * e2
+                m1 = Q01 * e0 + Q11 * e1 + Q12 * e2
+                m2 = Q02 * e0 + Q12 * e1 + Q22 * e2
+            Q00 += t * R[rg, 0, 0]
+            Q01 += t * R[rg, 1, 0]
+            Q02 += t * R[rg, 2, 0]
+            Q11 += t * R[rg, 1, 1]
+            Q12 += t * R[rg, 2, 1]
+            Q22 += t * R[rg, 2, 2]
+            Sq[c, 0] = Q00
+            Sq[c, 1] = Q01
+            Sq[c, 2] = Q02
+            Sq[c, 3] = Q11
+            Sq[c, 4] = Q12
+            Sq[c, 5] = Q22
+            Sq[c, 6] = m0
+            Sq[c, 7] = m1
+            Sq[c, 8] = m2
+            continue
+        w = c - ntip
+        J00 = Pm[w, 0]
+        J01 = Pm[w, 1]
+        J02 = Pm[w, 2]
+        J11 = Pm[w, 3]
+        J12 = Pm[w, 4]
+        J22 = Pm[w, 5]
+        h0 = Pm[w, 6]
+        h1 = Pm[w, 7]
+        h2 = Pm[w, 8]
+        if point and t == 0.0:
+            Pm[w, 18] = 1.0
+            Pm[w, 15] = m0
+            Pm[w, 16] = m1
+            Pm[w, 17] = m2
+            if False:
+                # absorbing into a point mass: H = J, g = h - J m
+                H00 = J00
+                H01 = J01
+                H02 = J02
+                H11 = J11
+                H12 = J12
+                H22 = J22
+                g0 = h0 - (J00 * m0 + J01 * m1 + J02 * m2)
+                g1 = h1 - (J01 * m0 + J11 * m1 + J12 * m2)
+                g2 = h2 - (J02 * m0 + J12 * m1 + J22 * m2)
+                if False:
+                    G00 = 0.5 * (g0 * g0 - H00)
+                    G01 = 0.5 * (g0 * g1 - H01)
+                    G02 = 0.5 * (g0 * g2 - H02)
+                    G11 = 0.5 * (g1 * g1 - H11)
+                    G12 = 0.5 * (g1 * g2 - H12)
+                    G22 = 0.5 * (g2 * g2 - H22)
+                    d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + R[rg, 2, 2] * G22
+                    dRs[rg, 0] += t * G00
+                    dRs[rg, 1] += t * G01
+                    dRs[rg, 2] += t * G02
+                    dRs[rg, 3] += t * G11
+                    dRs[rg, 4] += t * G12
+                    dRs[rg, 5] += t * G22
+                    if c == root:
+                        d_mu[0] = g0
+                        d_mu[1] = g1
+                        d_mu[2] = g2
+                if False:
+                    anc_mean[c, 0] = m0
+                    anc_cov[c, 0, 0] = 0.0
+                    anc_cov[c, 0, 1] = 0.0
+                    anc_cov[c, 0, 2] = 0.0
+                    anc_mean[c, 1] = m1
+                    anc_cov[c, 1, 0] = 0.0
+                    anc_cov[c, 1, 1] = 0.0
+                    anc_cov[c, 1, 2] = 0.0
+                    anc_mean[c, 2] = m2
+                    anc_cov[c, 2, 0] = 0.0
+                    anc_cov[c, 2, 1] = 0.0
+                    anc_cov[c, 2, 2] = 0.0
+        else:
+            Pm[w, 18] = 0.0
+            if point:
+                # below a point mass m: outside N(m, t R)
+                Q00 = t * R[rg, 0, 0]
+                Q01 = t * R[rg, 1, 0]
+                Q02 = t * R[rg, 2, 0]
+                Q11 = t * R[rg, 1, 1]
+                Q12 = t * R[rg, 2, 1]
+                Q22 = t * R[rg, 2, 2]
+                yD0 = Q00
+                yr0 = 1.0 / yD0
+                yL10 = (Q01) * yr0
+                yL20 = (Q02) * yr0
+                yw10 = yL10 * yD0
+                yD1 = Q11 - yL10 * yw10
+                yr1 = 1.0 / yD1
+                yL21 = (Q12 - yL20 * yw10) * yr1
+                yw20 = yL20 * yD0
+                yw21 = yL21 * yD1
+                yD2 = Q22 - yL20 * yw20 - yL21 * yw21
+                yr2 = 1.0 / yD2
+                yM10 = -(yL10)
+                yM20 = -(yL20 + yL21 * yM10)
+                yM21 = -(yL21)
+                L00 = yr0 + yr1 * yM10 * yM10 + yr2 * yM20 * yM20
+                L01 = yr1 * yM10 + yr2 * yM20 * yM21
+                L02 = yr2 * yM20
+                L11 = yr1 + yr2 * yM21 * yM21
+                L12 = yr2 * yM21
+                L22 = yr2
+                l0 = L00 * m0 + L01 * m1 + L02 * m2
+                l1 = L01 * m0 + L11 * m1 + L12 * m2
+                l2 = L02 * m0 + L12 * m1 + L22 * m2
+            elif t == 0.0:
+                # a zero-length branch: the outside information is the conditioned parent's
+                L00 = C00
+                L01 = C01
+                L02 = C02
+                L11 = C11
+                L12 = C12
+                L22 = C22
+                l0 = e0
+                l1 = e1
+                l2 = e2
+            else:
+                # push the conditioned parent's information across the branch (V = t F F')
+                F00 = FR[rg, 0]
+                F10 = FR[rg, 1]
+                F20 = FR[rg, 2]
+                F11 = FR[rg, 3]
+                F21 = FR[rg, 4]
+                F22 = FR[rg, 5]
+                vU0_0 = C00 * F00 + C01 * F10 + C02 * F20
+                vU0_1 = C01 * F11 + C02 * F21
+                vU0_2 = C02 * F22
+                vU1_0 = C01 * F00 + C11 * F10 + C12 * F20
+                vU1_1 = C11 * F11 + C12 * F21
+                vU1_2 = C12 * F22
+                vU2_0 = C02 * F00 + C12 * F10 + C22 * F20
+                vU2_1 = C12 * F11 + C22 * F21
+                vU2_2 = C22 * F22
+                vA00 = 1.0 + t * (F00 * vU0_0 + F10 * vU1_0 + F20 * vU2_0)
+                vA01 = t * (F00 * vU0_1 + F10 * vU1_1 + F20 * vU2_1)
+                vA02 = t * (F00 * vU0_2 + F10 * vU1_2 + F20 * vU2_2)
+                vA11 = 1.0 + t * (F11 * vU1_1 + F21 * vU2_1)
+                vA12 = t * (F11 * vU1_2 + F21 * vU2_2)
+                vA22 = 1.0 + t * (F22 * vU2_2)
+                vD0 = vA00
+                vr0 = 1.0 / vD0
+                vL10 = (vA01) * vr0
+                vL20 = (vA02) * vr0
+                vw10 = vL10 * vD0
+                vD1 = vA11 - vL10 * vw10
+                vr1 = 1.0 / vD1
+                vL21 = (vA12 - vL20 * vw10) * vr1
+                vw20 = vL20 * vD0
+                vw21 = vL21 * vD1
+                vD2 = vA22 - vL20 * vw20 - vL21 * vw21
+                vr2 = 1.0 / vD2
+                vY0_0 = vU0_0
+                vY0_1 = vU0_1 - vY0_0 * vL10
+                vY0_2 = vU0_2 - vY0_0 * vL20 - vY0_1 * vL21
+                vY1_0 = vU1_0
+                vY1_1 = vU1_1 - vY1_0 * vL10
+                vY1_2 = vU1_2 - vY1_0 * vL20 - vY1_1 * vL21
+                vY2_0 = vU2_0
+                vY2_1 = vU2_1 - vY2_0 * vL10
+                vY2_2 = vU2_2 - vY2_0 * vL20 - vY2_1 * vL21
+                vZ0_0 = vY0_0 * vr0
+                vZ0_1 = vY0_1 * vr1
+                vZ0_2 = vY0_2 * vr2
+                vZ1_0 = vY1_0 * vr0
+                vZ1_1 = vY1_1 * vr1
+                vZ1_2 = vY1_2 * vr2
+                vZ2_0 = vY2_0 * vr0
+                vZ2_1 = vY2_1 * vr1
+                vZ2_2 = vY2_2 * vr2
+                L00 = C00 - t * (vZ0_0 * vY0_0 + vZ0_1 * vY0_1 + vZ0_2 * vY0_2)
+                L01 = C01 - t * (vZ0_0 * vY1_0 + vZ0_1 * vY1_1 + vZ0_2 * vY1_2)
+                L02 = C02 - t * (vZ0_0 * vY2_0 + vZ0_1 * vY2_1 + vZ0_2 * vY2_2)
+                L11 = C11 - t * (vZ1_0 * vY1_0 + vZ1_1 * vY1_1 + vZ1_2 * vY1_2)
+                L12 = C12 - t * (vZ1_0 * vY2_0 + vZ1_1 * vY2_1 + vZ1_2 * vY2_2)
+                L22 = C22 - t * (vZ2_0 * vY2_0 + vZ2_1 * vY2_1 + vZ2_2 * vY2_2)
+                vz0 = F00 * e0 + F10 * e1 + F20 * e2
+                vz1 = F11 * e1 + F21 * e2
+                vz2 = F22 * e2
+                vx0 = vz0
+                vx1 = vz1 - vL10 * vx0
+                vx2 = vz2 - vL20 * vx0 - vL21 * vx1
+                l0 = e0 - t * (vZ0_0 * vx0 + vZ0_1 * vx1 + vZ0_2 * vx2)
+                l1 = e1 - t * (vZ1_0 * vx0 + vZ1_1 * vx1 + vZ1_2 * vx2)
+                l2 = e2 - t * (vZ2_0 * vx0 + vZ2_1 * vx1 + vZ2_2 * vx2)
+            Pm[w, 9] = L00
+            Pm[w, 10] = L01
+            Pm[w, 11] = L02
+            Pm[w, 12] = L11
+            Pm[w, 13] = L12
+            Pm[w, 14] = L22
+            Pm[w, 15] = l0
+            Pm[w, 16] = l1
+            Pm[w, 17] = l2
+            if False:
+                aA00 = L00 + J00
+                aA01 = L01 + J01
+                aA02 = L02 + J02
+                aA11 = L11 + J11
+                aA12 = L12 + J12
+                aA22 = L22 + J22
+                aD0 = aA00
+                ar0 = 1.0 / aD0
+                aL10 = (aA01) * ar0
+                aL20 = (aA02) * ar0
+                aw10 = aL10 * aD0
+                aD1 = aA11 - aL10 * aw10
+                ar1 = 1.0 / aD1
+                aL21 = (aA12 - aL20 * aw10) * ar1
+                aw20 = aL20 * aD0
+                aw21 = aL21 * aD1
+                aD2 = aA22 - aL20 * aw20 - aL21 * aw21
+                ar2 = 1.0 / aD2
+                aY0_0 = J00
+                aY0_1 = J01 - aY0_0 * aL10
+                aY0_2 = J02 - aY0_0 * aL20 - aY0_1 * aL21
+                aY1_0 = J01
+                aY1_1 = J11 - aY1_0 * aL10
+                aY1_2 = J12 - aY1_0 * aL20 - aY1_1 * aL21
+                aY2_0 = J02
+                aY2_1 = J12 - aY2_0 * aL10
+                aY2_2 = J22 - aY2_0 * aL20 - aY2_1 * aL21
+                aZ0_0 = aY0_0 * ar0
+                aZ0_1 = aY0_1 * ar1
+                aZ0_2 = aY0_2 * ar2
+                aZ1_0 = aY1_0 * ar0
+                aZ1_1 = aY1_1 * ar1
+                aZ1_2 = aY1_2 * ar2
+                aZ2_0 = aY2_0 * ar0
+                aZ2_1 = aY2_1 * ar1
+                aZ2_2 = aY2_2 * ar2
+                H00 = J00 - (aZ0_0 * aY0_0 + aZ0_1 * aY0_1 + aZ0_2 * aY0_2)
+                H01 = J01 - (aZ0_0 * aY1_0 + aZ0_1 * aY1_1 + aZ0_2 * aY1_2)
+                H02 = J02 - (aZ0_0 * aY2_0 + aZ0_1 * aY2_1 + aZ0_2 * aY2_2)
+                H11 = J11 - (aZ1_0 * aY1_0 + aZ1_1 * aY1_1 + aZ1_2 * aY1_2)
+                H12 = J12 - (aZ1_0 * aY2_0 + aZ1_1 * aY2_1 + aZ1_2 * aY2_2)
+                H22 = J22 - (aZ2_0 * aY2_0 + aZ2_1 * aY2_1 + aZ2_2 * aY2_2)
+                ax0 = h0 + l0
+                ax1 = h1 + l1 - aL10 * ax0
+                ax2 = h2 + l2 - aL20 * ax0 - aL21 * ax1
+                ax0 *= ar0
+                ax1 *= ar1
+                ax2 *= ar2
+                ax2 = ax2
+                ax1 = ax1 - aL21 * ax2
+                ax0 = ax0 - aL10 * ax1 - aL20 * ax2
+                g0 = L00 * ax0 + L01 * ax1 + L02 * ax2 - l0
+                g1 = L01 * ax0 + L11 * ax1 + L12 * ax2 - l1
+                g2 = L02 * ax0 + L12 * ax1 + L22 * ax2 - l2
+                if False:
+                    G00 = 0.5 * (g0 * g0 - H00)
+                    G01 = 0.5 * (g0 * g1 - H01)
+                    G02 = 0.5 * (g0 * g2 - H02)
+                    G11 = 0.5 * (g1 * g1 - H11)
+                    G12 = 0.5 * (g1 * g2 - H12)
+                    G22 = 0.5 * (g2 * g2 - H22)
+                    d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + R[rg, 2, 2] * G22
+                    dRs[rg, 0] += t * G00
+                    dRs[rg, 1] += t * G01
+                    dRs[rg, 2] += t * G02
+                    dRs[rg, 3] += t * G11
+                    dRs[rg, 4] += t * G12
+                    dRs[rg, 5] += t * G22
+                    if c == root:
+                        d_mu[0] = g0
+                        d_mu[1] = g1
+                        d_mu[2] = g2
+                if False:
+                    # posterior N((L + J)^-1 (l + h), (L + J)^-1)
+                    aA00 = L00 + J00
+                    aA01 = L01 + J01
+                    aA02 = L02 + J02
+                    aA11 = L11 + J11
+                    aA12 = L12 + J12
+                    aA22 = L22 + J22
+                    zD0 = aA00
+                    zr0 = 1.0 / zD0
+                    zL10 = (aA01) * zr0
+                    zL20 = (aA02) * zr0
+                    zw10 = zL10 * zD0
+                    zD1 = aA11 - zL10 * zw10
+                    zr1 = 1.0 / zD1
+                    zL21 = (aA12 - zL20 * zw10) * zr1
+                    zw20 = zL20 * zD0
+                    zw21 = zL21 * zD1
+                    zD2 = aA22 - zL20 * zw20 - zL21 * zw21
+                    zr2 = 1.0 / zD2
+                    zM10 = -(zL10)
+                    zM20 = -(zL20 + zL21 * zM10)
+                    zM21 = -(zL21)
+                    Z00 = zr0 + zr1 * zM10 * zM10 + zr2 * zM20 * zM20
+                    Z01 = zr1 * zM10 + zr2 * zM20 * zM21
+                    Z02 = zr2 * zM20
+                    Z11 = zr1 + zr2 * zM21 * zM21
+                    Z12 = zr2 * zM21
+                    Z22 = zr2
+                    u0 = l0 + h0
+                    u1 = l1 + h1
+                    u2 = l2 + h2
+                    anc_mean[c, 0] = Z00 * u0 + Z01 * u1 + Z02 * u2
+                    anc_cov[c, 0, 0] = Z00
+                    anc_cov[c, 0, 1] = Z01
+                    anc_cov[c, 0, 2] = Z02
+                    anc_mean[c, 1] = Z01 * u0 + Z11 * u1 + Z12 * u2
+                    anc_cov[c, 1, 0] = Z01
+                    anc_cov[c, 1, 1] = Z11
+                    anc_cov[c, 1, 2] = Z12
+                    anc_mean[c, 2] = Z02 * u0 + Z12 * u1 + Z22 * u2
+                    anc_cov[c, 2, 0] = Z02
+                    anc_cov[c, 2, 1] = Z12
+                    anc_cov[c, 2, 2] = Z22
+        for i in range(9):
+            Pm[w, i] = 0.0
+    dE00 = 0.0
+    dE01 = 0.0
+    dE02 = 0.0
+    dE11 = 0.0
+    dE12 = 0.0
+    dE22 = 0.0
+    E00 = E[0, 0]
+    E01 = E[1, 0]
+    E02 = E[2, 0]
+    E11 = E[1, 1]
+    E12 = E[2, 1]
+    E22 = E[2, 2]
+    for c in range(ntip):
+        t = lengths[c]
+        rg = regime[c]
+        P00 = Sq[c, 0]
+        P01 = Sq[c, 1]
+        P02 = Sq[c, 2]
+        P11 = Sq[c, 3]
+        P12 = Sq[c, 4]
+        P22 = Sq[c, 5]
+        m0 = Sq[c, 6]
+        m1 = Sq[c, 7]
+        m2 = Sq[c, 8]
+        X00 = err[c, 0, 0]
+        X01 = 0.5 * (err[c, 0, 1] + err[c, 1, 0])
+        X02 = 0.5 * (err[c, 0, 2] + err[c, 2, 0])
+        X11 = err[c, 1, 1]
+        X12 = 0.5 * (err[c, 1, 2] + err[c, 2, 1])
+        X22 = err[c, 2, 2]
+        if True:
+            loo_mean[c, 0] = m0
+            loo_mean[c, 1] = m1
+            loo_mean[c, 2] = m2
+            loo_cov[c, 0, 0] = P00 + E[0, 0] + X00
+            loo_cov[c, 0, 1] = P01 + E[0, 1] + X01
+            loo_cov[c, 0, 2] = P02 + E[0, 2] + X02
+            loo_cov[c, 1, 0] = P01 + E[1, 0] + X01
+            loo_cov[c, 1, 1] = P11 + E[1, 1] + X11
+            loo_cov[c, 1, 2] = P12 + E[1, 2] + X12
+            loo_cov[c, 2, 0] = P02 + E[2, 0] + X02
+            loo_cov[c, 2, 1] = P12 + E[2, 1] + X12
+            loo_cov[c, 2, 2] = P22 + E[2, 2] + X22
+        o0 = observed[c, 0]
+        o1 = observed[c, 1]
+        o2 = observed[c, 2]
+        q = (1 if o0 else 0) + (1 if o1 else 0) + (1 if o2 else 0)
+        if q == 0:
+            if True:
+                loo_logdens[c] = 0.0
+            if False:
+                d_lengths[c] = 0.0
+            if False:
+                anc_mean[c, 0] = m0
+                anc_mean[c, 1] = m1
+                anc_mean[c, 2] = m2
+                anc_cov[c, 0, 0] = P00
+                anc_cov[c, 0, 1] = P01
+                anc_cov[c, 0, 2] = P02
+                anc_cov[c, 1, 0] = P01
+                anc_cov[c, 1, 1] = P11
+                anc_cov[c, 1, 2] = P12
+                anc_cov[c, 2, 0] = P02
+                anc_cov[c, 2, 1] = P12
+                anc_cov[c, 2, 2] = P22
+            continue
+        K00 = (P00 + E00 + X00) if o0 else 1.0
+        K01 = (P01 + E01 + X01) if o0 and o1 else 0.0
+        K02 = (P02 + E02 + X02) if o0 and o2 else 0.0
+        K11 = (P11 + E11 + X11) if o1 else 1.0
+        K12 = (P12 + E12 + X12) if o1 and o2 else 0.0
+        K22 = (P22 + E22 + X22) if o2 else 1.0
+        xD0 = K00
+        xr0 = 1.0 / xD0
+        xL10 = (K01) * xr0
+        xL20 = (K02) * xr0
+        xw10 = xL10 * xD0
+        xD1 = K11 - xL10 * xw10
+        xr1 = 1.0 / xD1
+        xL21 = (K12 - xL20 * xw10) * xr1
+        xw20 = xL20 * xD0
+        xw21 = xL21 * xD1
+        xD2 = K22 - xL20 * xw20 - xL21 * xw21
+        xr2 = 1.0 / xD2
+        xM10 = -(xL10)
+        xM20 = -(xL20 + xL21 * xM10)
+        xM21 = -(xL21)
+        W00 = xr0 + xr1 * xM10 * xM10 + xr2 * xM20 * xM20
+        W01 = xr1 * xM10 + xr2 * xM20 * xM21
+        W02 = xr2 * xM20
+        W11 = xr1 + xr2 * xM21 * xM21
+        W12 = xr2 * xM21
+        W22 = xr2
+        W00 = W00 if o0 else 0.0
+        W01 = W01 if o0 and o1 else 0.0
+        W02 = W02 if o0 and o2 else 0.0
+        W11 = W11 if o1 else 0.0
+        W12 = W12 if o1 and o2 else 0.0
+        W22 = W22 if o2 else 0.0
+        r0 = (y[c, 0] - m0) if o0 else 0.0
+        r1 = (y[c, 1] - m1) if o1 else 0.0
+        r2 = (y[c, 2] - m2) if o2 else 0.0
+        a0 = W00 * r0 + W01 * r1 + W02 * r2
+        a1 = W01 * r0 + W11 * r1 + W12 * r2
+        a2 = W02 * r0 + W12 * r1 + W22 * r2
+        if True:
+            if xD0 > 0.0 and xD1 > 0.0 and xD2 > 0.0:
+                pd = xD0 * xD1 * xD2
+                if pd > 1e-280 and pd < 1e280:
+                    ld = math.log(pd)
+                else:
+                    ld = math.log(xD0) + math.log(xD1) + math.log(xD2)
+            else:
+                ld = np.nan
+            loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1 + a2 * r2) - 0.5 * ld - 0.5 * q * LOG_2PI
+        if False:
+            G00 = 0.5 * (a0 * a0 - W00)
+            G01 = 0.5 * (a0 * a1 - W01)
+            G02 = 0.5 * (a0 * a2 - W02)
+            G11 = 0.5 * (a1 * a1 - W11)
+            G12 = 0.5 * (a1 * a2 - W12)
+            G22 = 0.5 * (a2 * a2 - W22)
+            d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + R[rg, 2, 2] * G22
+            dRs[rg, 0] += t * G00
+            dRs[rg, 1] += t * G01
+            dRs[rg, 2] += t * G02
+            dRs[rg, 3] += t * G11
+            dRs[rg, 4] += t * G12
+            dRs[rg, 5] += t * G22
+            dE00 += G00
+            d_err[c, 0, 0] = G00
+            dE01 += G01
+            d_err[c, 0, 1] = G01
+            d_err[c, 1, 0] = G01
+            dE02 += G02
+            d_err[c, 0, 2] = G02
+            d_err[c, 2, 0] = G02
+            dE11 += G11
+            d_err[c, 1, 1] = G11
+            dE12 += G12
+            d_err[c, 1, 2] = G12
+            d_err[c, 2, 1] = G12
+            dE22 += G22
+            d_err[c, 2, 2] = G22
+            d_y[c, 0] = -a0
+            d_y[c, 1] = -a1
+            d_y[c, 2] = -a2
+            if c == root:
+                d_mu[0] = a0
+                d_mu[1] = a1
+                d_mu[2] = a2
+        if False:
+            anc_mean[c, 0] = m0 + P00 * a0 + P01 * a1 + P02 * a2
+            anc_mean[c, 1] = m1 + P01 * a0 + P11 * a1 + P12 * a2
+            anc_mean[c, 2] = m2 + P02 * a0 + P12 * a1 + P22 * a2
+            Z0_0 = P00 * W00 + P01 * W01 + P02 * W02
+            Z0_1 = P00 * W01 + P01 * W11 + P02 * W12
+            Z0_2 = P00 * W02 + P01 * W12 + P02 * W22
+            Z1_0 = P01 * W00 + P11 * W01 + P12 * W02
+            Z1_1 = P01 * W01 + P11 * W11 + P12 * W12
+            Z1_2 = P01 * W02 + P11 * W12 + P12 * W22
+            Z2_0 = P02 * W00 + P12 * W01 + P22 * W02
+            Z2_1 = P02 * W01 + P12 * W11 + P22 * W12
+            Z2_2 = P02 * W02 + P12 * W12 + P22 * W22
+            anc_cov[c, 0, 0] = P00 - (Z0_0 * P00 + Z0_1 * P01 + Z0_2 * P02)
+            anc_cov[c, 0, 1] = P01 - (Z0_0 * P01 + Z0_1 * P11 + Z0_2 * P12)
+            anc_cov[c, 0, 2] = P02 - (Z0_0 * P02 + Z0_1 * P12 + Z0_2 * P22)
+            anc_cov[c, 1, 0] = P01 - (Z1_0 * P00 + Z1_1 * P01 + Z1_2 * P02)
+            anc_cov[c, 1, 1] = P11 - (Z1_0 * P01 + Z1_1 * P11 + Z1_2 * P12)
+            anc_cov[c, 1, 2] = P12 - (Z1_0 * P02 + Z1_1 * P12 + Z1_2 * P22)
+            anc_cov[c, 2, 0] = P02 - (Z2_0 * P00 + Z2_1 * P01 + Z2_2 * P02)
+            anc_cov[c, 2, 1] = P12 - (Z2_0 * P01 + Z2_1 * P11 + Z2_2 * P12)
+            anc_cov[c, 2, 2] = P22 - (Z2_0 * P02 + Z2_1 * P12 + Z2_2 * P22)
+    if False:
+        for rg in range(R.shape[0]):
+            d_R[rg, 0, 0] += dRs[rg, 0]
+            d_R[rg, 0, 1] += dRs[rg, 1]
+            d_R[rg, 1, 0] += dRs[rg, 1]
+            d_R[rg, 0, 2] += dRs[rg, 2]
+            d_R[rg, 2, 0] += dRs[rg, 2]
+            d_R[rg, 1, 1] += dRs[rg, 3]
+            d_R[rg, 1, 2] += dRs[rg, 4]
+            d_R[rg, 2, 1] += dRs[rg, 4]
+            d_R[rg, 2, 2] += dRs[rg, 5]
+        d_E[0, 0] += dE00
+        d_E[0, 1] += dE01
+        d_E[1, 0] += dE01
+        d_E[0, 2] += dE02
+        d_E[2, 0] += dE02
+        d_E[1, 1] += dE11
+        d_E[1, 2] += dE12
+        d_E[2, 1] += dE12
+        d_E[2, 2] += dE22
+
+
+@njit(**_JIT)
+def downward_anc_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq,
+               d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
+               anc_mean, anc_cov):
+    """Pass from the root to the tips after the upward pass, then the tips' terms (anc)."""
+    n = parent.shape[0]
+    ntip = y.shape[0]
+    if False:
+        d_lengths[:] = 0.0
+        d_y[:] = 0.0
+        d_R[:] = 0.0
+        d_E[:] = 0.0
+        d_err[:] = 0.0
+        d_mu[:] = 0.0
+    dRs = np.zeros((R.shape[0], 6))
+    # Cholesky factor of each regime's R: V = t F F' on a branch
+    FR = np.empty((R.shape[0], 6))
+    for rg in range(R.shape[0]):
+        fd = R[rg, 0, 0]
+        F00 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F00 if fd > 0.0 else 0.0
+        F10 = (R[rg, 1, 0]) * fr
+        F20 = (R[rg, 2, 0]) * fr
+        fd = R[rg, 1, 1] - F10 * F10
+        F11 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F11 if fd > 0.0 else 0.0
+        F21 = (R[rg, 2, 1] - F20 * F10) * fr
+        fd = R[rg, 2, 2] - F20 * F20 - F21 * F21
+        F22 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F22 if fd > 0.0 else 0.0
+        FR[rg, 0] = F00
+        FR[rg, 1] = F10
+        FR[rg, 2] = F20
+        FR[rg, 3] = F11
+        FR[rg, 4] = F21
+        FR[rg, 5] = F22
+    root = n - 1
+    for c in range(root, -1, -1):
+        t = lengths[c]
+        rg = regime[c]
+        if c == root:
+            point = True
+            m0 = mu[0]
+            m1 = mu[1]
+            m2 = mu[2]
+            Q00 = 0.0
+            Q01 = 0.0
+            Q02 = 0.0
+            Q11 = 0.0
+            Q12 = 0.0
+            Q22 = 0.0
+        else:
+            if c >= PREFETCH_AHEAD:
+                prefetch_row(Pm, parent[c - PREFETCH_AHEAD] - ntip)
+            p = parent[c] - ntip
+            # the other children's messages: before c (upward pass) plus after c (running sum)
+            S00 = Sq[c, 9] + Pm[p, 0]
+            S01 = Sq[c, 10] + Pm[p, 1]
+            S02 = Sq[c, 11] + Pm[p, 2]
+            S11 = Sq[c, 12] + Pm[p, 3]
+            S12 = Sq[c, 13] + Pm[p, 4]
+            S22 = Sq[c, 14] + Pm[p, 5]
+            s0 = Sq[c, 15] + Pm[p, 6]
+            s1 = Sq[c, 16] + Pm[p, 7]
+            s2 = Sq[c, 17] + Pm[p, 8]
+            for i in range(9):
+                Pm[p, i] += Sq[c, i]
+            point = Pm[p, 18] != 0.0
+            if point:
+                m0 = Pm[p, 15]
+                m1 = Pm[p, 16]
+                m2 = Pm[p, 17]
+                Q00 = 0.0
+                Q01 = 0.0
+                Q02 = 0.0
+                Q11 = 0.0
+                Q12 = 0.0
+                Q22 = 0.0
+            else:
+                # condition the parent's outside on them: information adds
+                C00 = Pm[p, 9]
+                C01 = Pm[p, 10]
+                C02 = Pm[p, 11]
+                C11 = Pm[p, 12]
+                C12 = Pm[p, 13]
+                C22 = Pm[p, 14]
+                e0 = Pm[p, 15]
+                e1 = Pm[p, 16]
+                e2 = Pm[p, 17]
+                C00 += S00
+                C01 += S01
+                C02 += S02
+                C11 += S11
+                C12 += S12
+                C22 += S22
+                e0 += s0
+                e1 += s1
+                e2 += s2
+        if c < ntip:
+            # a tip's outside moment form
+            if not point:
+                xD0 = C00
+                xr0 = 1.0 / xD0
+                xL10 = (C01) * xr0
+                xL20 = (C02) * xr0
+                xw10 = xL10 * xD0
+                xD1 = C11 - xL10 * xw10
+                xr1 = 1.0 / xD1
+                xL21 = (C12 - xL20 * xw10) * xr1
+                xw20 = xL20 * xD0
+                xw21 = xL21 * xD1
+                xD2 = C22 - xL20 * xw20 - xL21 * xw21
+                xr2 = 1.0 / xD2
+                xM10 = -(xL10)
+                xM20 = -(xL20 + xL21 * xM10)
+                xM21 = -(xL21)
+                Q00 = xr0 + xr1 * xM10 * xM10 + xr2 * xM20 * xM20
+                Q01 = xr1 * xM10 + xr2 * xM20 * xM21
+                Q02 = xr2 * xM20
+                Q11 = xr1 + xr2 * xM21 * xM21
+                Q12 = xr2 * xM21
+                Q22 = xr2
+                m0 = Q00 * e0 + Q01 * e1 + Q02 * e2
+                m1 = Q01 * e0 + Q11 * e1 + Q12 * e2
+                m2 = Q02 * e0 + Q12 * e1 + Q22 * e2
+            Q00 += t * R[rg, 0, 0]
+            Q01 += t * R[rg, 1, 0]
+            Q02 += t * R[rg, 2, 0]
+            Q11 += t * R[rg, 1, 1]
+            Q12 += t * R[rg, 2, 1]
+            Q22 += t * R[rg, 2, 2]
+            Sq[c, 0] = Q00
+            Sq[c, 1] = Q01
+            Sq[c, 2] = Q02
+            Sq[c, 3] = Q11
+            Sq[c, 4] = Q12
+            Sq[c, 5] = Q22
+            Sq[c, 6] = m0
+            Sq[c, 7] = m1
+            Sq[c, 8] = m2
+            continue
+        w = c - ntip
+        J00 = Pm[w, 0]
+        J01 = Pm[w, 1]
+        J02 = Pm[w, 2]
+        J11 = Pm[w, 3]
+        J12 = Pm[w, 4]
+        J22 = Pm[w, 5]
+        h0 = Pm[w, 6]
+        h1 = Pm[w, 7]
+        h2 = Pm[w, 8]
+        if point and t == 0.0:
+            Pm[w, 18] = 1.0
+            Pm[w, 15] = m0
+            Pm[w, 16] = m1
+            Pm[w, 17] = m2
+            if True:
+                # absorbing into a point mass: H = J, g = h - J m
+                H00 = J00
+                H01 = J01
+                H02 = J02
+                H11 = J11
+                H12 = J12
+                H22 = J22
+                g0 = h0 - (J00 * m0 + J01 * m1 + J02 * m2)
+                g1 = h1 - (J01 * m0 + J11 * m1 + J12 * m2)
+                g2 = h2 - (J02 * m0 + J12 * m1 + J22 * m2)
+                if False:
+                    G00 = 0.5 * (g0 * g0 - H00)
+                    G01 = 0.5 * (g0 * g1 - H01)
+                    G02 = 0.5 * (g0 * g2 - H02)
+                    G11 = 0.5 * (g1 * g1 - H11)
+                    G12 = 0.5 * (g1 * g2 - H12)
+                    G22 = 0.5 * (g2 * g2 - H22)
+                    d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + R[rg, 2, 2] * G22
+                    dRs[rg, 0] += t * G00
+                    dRs[rg, 1] += t * G01
+                    dRs[rg, 2] += t * G02
+                    dRs[rg, 3] += t * G11
+                    dRs[rg, 4] += t * G12
+                    dRs[rg, 5] += t * G22
+                    if c == root:
+                        d_mu[0] = g0
+                        d_mu[1] = g1
+                        d_mu[2] = g2
+                if True:
+                    anc_mean[c, 0] = m0
+                    anc_cov[c, 0, 0] = 0.0
+                    anc_cov[c, 0, 1] = 0.0
+                    anc_cov[c, 0, 2] = 0.0
+                    anc_mean[c, 1] = m1
+                    anc_cov[c, 1, 0] = 0.0
+                    anc_cov[c, 1, 1] = 0.0
+                    anc_cov[c, 1, 2] = 0.0
+                    anc_mean[c, 2] = m2
+                    anc_cov[c, 2, 0] = 0.0
+                    anc_cov[c, 2, 1] = 0.0
+                    anc_cov[c, 2, 2] = 0.0
+        else:
+            Pm[w, 18] = 0.0
+            if point:
+                # below a point mass m: outside N(m, t R)
+                Q00 = t * R[rg, 0, 0]
+                Q01 = t * R[rg, 1, 0]
+                Q02 = t * R[rg, 2, 0]
+                Q11 = t * R[rg, 1, 1]
+                Q12 = t * R[rg, 2, 1]
+                Q22 = t * R[rg, 2, 2]
+                yD0 = Q00
+                yr0 = 1.0 / yD0
+                yL10 = (Q01) * yr0
+                yL20 = (Q02) * yr0
+                yw10 = yL10 * yD0
+                yD1 = Q11 - yL10 * yw10
+                yr1 = 1.0 / yD1
+                yL21 = (Q12 - yL20 * yw10) * yr1
+                yw20 = yL20 * yD0
+                yw21 = yL21 * yD1
+                yD2 = Q22 - yL20 * yw20 - yL21 * yw21
+                yr2 = 1.0 / yD2
+                yM10 = -(yL10)
+                yM20 = -(yL20 + yL21 * yM10)
+                yM21 = -(yL21)
+                L00 = yr0 + yr1 * yM10 * yM10 + yr2 * yM20 * yM20
+                L01 = yr1 * yM10 + yr2 * yM20 * yM21
+                L02 = yr2 * yM20
+                L11 = yr1 + yr2 * yM21 * yM21
+                L12 = yr2 * yM21
+                L22 = yr2
+                l0 = L00 * m0 + L01 * m1 + L02 * m2
+                l1 = L01 * m0 + L11 * m1 + L12 * m2
+                l2 = L02 * m0 + L12 * m1 + L22 * m2
+            elif t == 0.0:
+                # a zero-length branch: the outside information is the conditioned parent's
+                L00 = C00
+                L01 = C01
+                L02 = C02
+                L11 = C11
+                L12 = C12
+                L22 = C22
+                l0 = e0
+                l1 = e1
+                l2 = e2
+            else:
+                # push the conditioned parent's information across the branch (V = t F F')
+                F00 = FR[rg, 0]
+                F10 = FR[rg, 1]
+                F20 = FR[rg, 2]
+                F11 = FR[rg, 3]
+                F21 = FR[rg, 4]
+                F22 = FR[rg, 5]
+                vU0_0 = C00 * F00 + C01 * F10 + C02 * F20
+                vU0_1 = C01 * F11 + C02 * F21
+                vU0_2 = C02 * F22
+                vU1_0 = C01 * F00 + C11 * F10 + C12 * F20
+                vU1_1 = C11 * F11 + C12 * F21
+                vU1_2 = C12 * F22
+                vU2_0 = C02 * F00 + C12 * F10 + C22 * F20
+                vU2_1 = C12 * F11 + C22 * F21
+                vU2_2 = C22 * F22
+                vA00 = 1.0 + t * (F00 * vU0_0 + F10 * vU1_0 + F20 * vU2_0)
+                vA01 = t * (F00 * vU0_1 + F10 * vU1_1 + F20 * vU2_1)
+                vA02 = t * (F00 * vU0_2 + F10 * vU1_2 + F20 * vU2_2)
+                vA11 = 1.0 + t * (F11 * vU1_1 + F21 * vU2_1)
+                vA12 = t * (F11 * vU1_2 + F21 * vU2_2)
+                vA22 = 1.0 + t * (F22 * vU2_2)
+                vD0 = vA00
+                vr0 = 1.0 / vD0
+                vL10 = (vA01) * vr0
+                vL20 = (vA02) * vr0
+                vw10 = vL10 * vD0
+                vD1 = vA11 - vL10 * vw10
+                vr1 = 1.0 / vD1
+                vL21 = (vA12 - vL20 * vw10) * vr1
+                vw20 = vL20 * vD0
+                vw21 = vL21 * vD1
+                vD2 = vA22 - vL20 * vw20 - vL21 * vw21
+                vr2 = 1.0 / vD2
+                vY0_0 = vU0_0
+                vY0_1 = vU0_1 - vY0_0 * vL10
+                vY0_2 = vU0_2 - vY0_0 * vL20 - vY0_1 * vL21
+                vY1_0 = vU1_0
+                vY1_1 = vU1_1 - vY1_0 * vL10
+                vY1_2 = vU1_2 - vY1_0 * vL20 - vY1_1 * vL21
+                vY2_0 = vU2_0
+                vY2_1 = vU2_1 - vY2_0 * vL10
+                vY2_2 = vU2_2 - vY2_0 * vL20 - vY2_1 * vL21
+                vZ0_0 = vY0_0 * vr0
+                vZ0_1 = vY0_1 * vr1
+                vZ0_2 = vY0_2 * vr2
+                vZ1_0 = vY1_0 * vr0
+                vZ1_1 = vY1_1 * vr1
+                vZ1_2 = vY1_2 * vr2
+                vZ2_0 = vY2_0 * vr0
+                vZ2_1 = vY2_1 * vr1
+                vZ2_2 = vY2_2 * vr2
+                L00 = C00 - t * (vZ0_0 * vY0_0 + vZ0_1 * vY0_1 + vZ0_2 * vY0_2)
+                L01 = C01 - t * (vZ0_0 * vY1_0 + vZ0_1 * vY1_1 + vZ0_2 * vY1_2)
+                L02 = C02 - t * (vZ0_0 * vY2_0 + vZ0_1 * vY2_1 + vZ0_2 * vY2_2)
+                L11 = C11 - t * (vZ1_0 * vY1_0 + vZ1_1 * vY1_1 + vZ1_2 * vY1_2)
+                L12 = C12 - t * (vZ1_0 * vY2_0 + vZ1_1 * vY2_1 + vZ1_2 * vY2_2)
+                L22 = C22 - t * (vZ2_0 * vY2_0 + vZ2_1 * vY2_1 + vZ2_2 * vY2_2)
+                vz0 = F00 * e0 + F10 * e1 + F20 * e2
+                vz1 = F11 * e1 + F21 * e2
+                vz2 = F22 * e2
+                vx0 = vz0
+                vx1 = vz1 - vL10 * vx0
+                vx2 = vz2 - vL20 * vx0 - vL21 * vx1
+                l0 = e0 - t * (vZ0_0 * vx0 + vZ0_1 * vx1 + vZ0_2 * vx2)
+                l1 = e1 - t * (vZ1_0 * vx0 + vZ1_1 * vx1 + vZ1_2 * vx2)
+                l2 = e2 - t * (vZ2_0 * vx0 + vZ2_1 * vx1 + vZ2_2 * vx2)
+            Pm[w, 9] = L00
+            Pm[w, 10] = L01
+            Pm[w, 11] = L02
+            Pm[w, 12] = L11
+            Pm[w, 13] = L12
+            Pm[w, 14] = L22
+            Pm[w, 15] = l0
+            Pm[w, 16] = l1
+            Pm[w, 17] = l2
+            if True:
+                aA00 = L00 + J00
+                aA01 = L01 + J01
+                aA02 = L02 + J02
+                aA11 = L11 + J11
+                aA12 = L12 + J12
+                aA22 = L22 + J22
+                aD0 = aA00
+                ar0 = 1.0 / aD0
+                aL10 = (aA01) * ar0
+                aL20 = (aA02) * ar0
+                aw10 = aL10 * aD0
+                aD1 = aA11 - aL10 * aw10
+                ar1 = 1.0 / aD1
+                aL21 = (aA12 - aL20 * aw10) * ar1
+                aw20 = aL20 * aD0
+                aw21 = aL21 * aD1
+                aD2 = aA22 - aL20 * aw20 - aL21 * aw21
+                ar2 = 1.0 / aD2
+                aY0_0 = J00
+                aY0_1 = J01 - aY0_0 * aL10
+                aY0_2 = J02 - aY0_0 * aL20 - aY0_1 * aL21
+                aY1_0 = J01
+                aY1_1 = J11 - aY1_0 * aL10
+                aY1_2 = J12 - aY1_0 * aL20 - aY1_1 * aL21
+                aY2_0 = J02
+                aY2_1 = J12 - aY2_0 * aL10
+                aY2_2 = J22 - aY2_0 * aL20 - aY2_1 * aL21
+                aZ0_0 = aY0_0 * ar0
+                aZ0_1 = aY0_1 * ar1
+                aZ0_2 = aY0_2 * ar2
+                aZ1_0 = aY1_0 * ar0
+                aZ1_1 = aY1_1 * ar1
+                aZ1_2 = aY1_2 * ar2
+                aZ2_0 = aY2_0 * ar0
+                aZ2_1 = aY2_1 * ar1
+                aZ2_2 = aY2_2 * ar2
+                H00 = J00 - (aZ0_0 * aY0_0 + aZ0_1 * aY0_1 + aZ0_2 * aY0_2)
+                H01 = J01 - (aZ0_0 * aY1_0 + aZ0_1 * aY1_1 + aZ0_2 * aY1_2)
+                H02 = J02 - (aZ0_0 * aY2_0 + aZ0_1 * aY2_1 + aZ0_2 * aY2_2)
+                H11 = J11 - (aZ1_0 * aY1_0 + aZ1_1 * aY1_1 + aZ1_2 * aY1_2)
+                H12 = J12 - (aZ1_0 * aY2_0 + aZ1_1 * aY2_1 + aZ1_2 * aY2_2)
+                H22 = J22 - (aZ2_0 * aY2_0 + aZ2_1 * aY2_1 + aZ2_2 * aY2_2)
+                ax0 = h0 + l0
+                ax1 = h1 + l1 - aL10 * ax0
+                ax2 = h2 + l2 - aL20 * ax0 - aL21 * ax1
+                ax0 *= ar0
+                ax1 *= ar1
+                ax2 *= ar2
+                ax2 = ax2
+                ax1 = ax1 - aL21 * ax2
+                ax0 = ax0 - aL10 * ax1 - aL20 * ax2
+                g0 = L00 * ax0 + L01 * ax1 + L02 * ax2 - l0
+                g1 = L01 * ax0 + L11 * ax1 + L12 * ax2 - l1
+                g2 = L02 * ax0 + L12 * ax1 + L22 * ax2 - l2
+                if False:
+                    G00 = 0.5 * (g0 * g0 - H00)
+                    G01 = 0.5 * (g0 * g1 - H01)
+                    G02 = 0.5 * (g0 * g2 - H02)
+                    G11 = 0.5 * (g1 * g1 - H11)
+                    G12 = 0.5 * (g1 * g2 - H12)
+                    G22 = 0.5 * (g2 * g2 - H22)
+                    d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + R[rg, 2, 2] * G22
+                    dRs[rg, 0] += t * G00
+                    dRs[rg, 1] += t * G01
+                    dRs[rg, 2] += t * G02
+                    dRs[rg, 3] += t * G11
+                    dRs[rg, 4] += t * G12
+                    dRs[rg, 5] += t * G22
+                    if c == root:
+                        d_mu[0] = g0
+                        d_mu[1] = g1
+                        d_mu[2] = g2
+                if True:
+                    # posterior N((L + J)^-1 (l + h), (L + J)^-1)
+                    aA00 = L00 + J00
+                    aA01 = L01 + J01
+                    aA02 = L02 + J02
+                    aA11 = L11 + J11
+                    aA12 = L12 + J12
+                    aA22 = L22 + J22
+                    zD0 = aA00
+                    zr0 = 1.0 / zD0
+                    zL10 = (aA01) * zr0
+                    zL20 = (aA02) * zr0
+                    zw10 = zL10 * zD0
+                    zD1 = aA11 - zL10 * zw10
+                    zr1 = 1.0 / zD1
+                    zL21 = (aA12 - zL20 * zw10) * zr1
+                    zw20 = zL20 * zD0
+                    zw21 = zL21 * zD1
+                    zD2 = aA22 - zL20 * zw20 - zL21 * zw21
+                    zr2 = 1.0 / zD2
+                    zM10 = -(zL10)
+                    zM20 = -(zL20 + zL21 * zM10)
+                    zM21 = -(zL21)
+                    Z00 = zr0 + zr1 * zM10 * zM10 + zr2 * zM20 * zM20
+                    Z01 = zr1 * zM10 + zr2 * zM20 * zM21
+                    Z02 = zr2 * zM20
+                    Z11 = zr1 + zr2 * zM21 * zM21
+                    Z12 = zr2 * zM21
+                    Z22 = zr2
+                    u0 = l0 + h0
+                    u1 = l1 + h1
+                    u2 = l2 + h2
+                    anc_mean[c, 0] = Z00 * u0 + Z01 * u1 + Z02 * u2
+                    anc_cov[c, 0, 0] = Z00
+                    anc_cov[c, 0, 1] = Z01
+                    anc_cov[c, 0, 2] = Z02
+                    anc_mean[c, 1] = Z01 * u0 + Z11 * u1 + Z12 * u2
+                    anc_cov[c, 1, 0] = Z01
+                    anc_cov[c, 1, 1] = Z11
+                    anc_cov[c, 1, 2] = Z12
+                    anc_mean[c, 2] = Z02 * u0 + Z12 * u1 + Z22 * u2
+                    anc_cov[c, 2, 0] = Z02
+                    anc_cov[c, 2, 1] = Z12
+                    anc_cov[c, 2, 2] = Z22
+        for i in range(9):
+            Pm[w, i] = 0.0
+    dE00 = 0.0
+    dE01 = 0.0
+    dE02 = 0.0
+    dE11 = 0.0
+    dE12 = 0.0
+    dE22 = 0.0
+    E00 = E[0, 0]
+    E01 = E[1, 0]
+    E02 = E[2, 0]
+    E11 = E[1, 1]
+    E12 = E[2, 1]
+    E22 = E[2, 2]
+    for c in range(ntip):
+        t = lengths[c]
+        rg = regime[c]
+        P00 = Sq[c, 0]
+        P01 = Sq[c, 1]
+        P02 = Sq[c, 2]
+        P11 = Sq[c, 3]
+        P12 = Sq[c, 4]
+        P22 = Sq[c, 5]
+        m0 = Sq[c, 6]
+        m1 = Sq[c, 7]
+        m2 = Sq[c, 8]
+        X00 = err[c, 0, 0]
+        X01 = 0.5 * (err[c, 0, 1] + err[c, 1, 0])
+        X02 = 0.5 * (err[c, 0, 2] + err[c, 2, 0])
+        X11 = err[c, 1, 1]
+        X12 = 0.5 * (err[c, 1, 2] + err[c, 2, 1])
+        X22 = err[c, 2, 2]
+        if False:
+            loo_mean[c, 0] = m0
+            loo_mean[c, 1] = m1
+            loo_mean[c, 2] = m2
+            loo_cov[c, 0, 0] = P00 + E[0, 0] + X00
+            loo_cov[c, 0, 1] = P01 + E[0, 1] + X01
+            loo_cov[c, 0, 2] = P02 + E[0, 2] + X02
+            loo_cov[c, 1, 0] = P01 + E[1, 0] + X01
+            loo_cov[c, 1, 1] = P11 + E[1, 1] + X11
+            loo_cov[c, 1, 2] = P12 + E[1, 2] + X12
+            loo_cov[c, 2, 0] = P02 + E[2, 0] + X02
+            loo_cov[c, 2, 1] = P12 + E[2, 1] + X12
+            loo_cov[c, 2, 2] = P22 + E[2, 2] + X22
+        o0 = observed[c, 0]
+        o1 = observed[c, 1]
+        o2 = observed[c, 2]
+        q = (1 if o0 else 0) + (1 if o1 else 0) + (1 if o2 else 0)
+        if q == 0:
+            if False:
+                loo_logdens[c] = 0.0
+            if False:
+                d_lengths[c] = 0.0
+            if True:
+                anc_mean[c, 0] = m0
+                anc_mean[c, 1] = m1
+                anc_mean[c, 2] = m2
+                anc_cov[c, 0, 0] = P00
+                anc_cov[c, 0, 1] = P01
+                anc_cov[c, 0, 2] = P02
+                anc_cov[c, 1, 0] = P01
+                anc_cov[c, 1, 1] = P11
+                anc_cov[c, 1, 2] = P12
+                anc_cov[c, 2, 0] = P02
+                anc_cov[c, 2, 1] = P12
+                anc_cov[c, 2, 2] = P22
+            continue
+        K00 = (P00 + E00 + X00) if o0 else 1.0
+        K01 = (P01 + E01 + X01) if o0 and o1 else 0.0
+        K02 = (P02 + E02 + X02) if o0 and o2 else 0.0
+        K11 = (P11 + E11 + X11) if o1 else 1.0
+        K12 = (P12 + E12 + X12) if o1 and o2 else 0.0
+        K22 = (P22 + E22 + X22) if o2 else 1.0
+        xD0 = K00
+        xr0 = 1.0 / xD0
+        xL10 = (K01) * xr0
+        xL20 = (K02) * xr0
+        xw10 = xL10 * xD0
+        xD1 = K11 - xL10 * xw10
+        xr1 = 1.0 / xD1
+        xL21 = (K12 - xL20 * xw10) * xr1
+        xw20 = xL20 * xD0
+        xw21 = xL21 * xD1
+        xD2 = K22 - xL20 * xw20 - xL21 * xw21
+        xr2 = 1.0 / xD2
+        xM10 = -(xL10)
+        xM20 = -(xL20 + xL21 * xM10)
+        xM21 = -(xL21)
+        W00 = xr0 + xr1 * xM10 * xM10 + xr2 * xM20 * xM20
+        W01 = xr1 * xM10 + xr2 * xM20 * xM21
+        W02 = xr2 * xM20
+        W11 = xr1 + xr2 * xM21 * xM21
+        W12 = xr2 * xM21
+        W22 = xr2
+        W00 = W00 if o0 else 0.0
+        W01 = W01 if o0 and o1 else 0.0
+        W02 = W02 if o0 and o2 else 0.0
+        W11 = W11 if o1 else 0.0
+        W12 = W12 if o1 and o2 else 0.0
+        W22 = W22 if o2 else 0.0
+        r0 = (y[c, 0] - m0) if o0 else 0.0
+        r1 = (y[c, 1] - m1) if o1 else 0.0
+        r2 = (y[c, 2] - m2) if o2 else 0.0
+        a0 = W00 * r0 + W01 * r1 + W02 * r2
+        a1 = W01 * r0 + W11 * r1 + W12 * r2
+        a2 = W02 * r0 + W12 * r1 + W22 * r2
+        if False:
+            if xD0 > 0.0 and xD1 > 0.0 and xD2 > 0.0:
+                pd = xD0 * xD1 * xD2
+                if pd > 1e-280 and pd < 1e280:
+                    ld = math.log(pd)
+                else:
+                    ld = math.log(xD0) + math.log(xD1) + math.log(xD2)
+            else:
+                ld = np.nan
+            loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1 + a2 * r2) - 0.5 * ld - 0.5 * q * LOG_2PI
+        if False:
+            G00 = 0.5 * (a0 * a0 - W00)
+            G01 = 0.5 * (a0 * a1 - W01)
+            G02 = 0.5 * (a0 * a2 - W02)
+            G11 = 0.5 * (a1 * a1 - W11)
+            G12 = 0.5 * (a1 * a2 - W12)
+            G22 = 0.5 * (a2 * a2 - W22)
+            d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + R[rg, 2, 2] * G22
+            dRs[rg, 0] += t * G00
+            dRs[rg, 1] += t * G01
+            dRs[rg, 2] += t * G02
+            dRs[rg, 3] += t * G11
+            dRs[rg, 4] += t * G12
+            dRs[rg, 5] += t * G22
+            dE00 += G00
+            d_err[c, 0, 0] = G00
+            dE01 += G01
+            d_err[c, 0, 1] = G01
+            d_err[c, 1, 0] = G01
+            dE02 += G02
+            d_err[c, 0, 2] = G02
+            d_err[c, 2, 0] = G02
+            dE11 += G11
+            d_err[c, 1, 1] = G11
+            dE12 += G12
+            d_err[c, 1, 2] = G12
+            d_err[c, 2, 1] = G12
+            dE22 += G22
+            d_err[c, 2, 2] = G22
+            d_y[c, 0] = -a0
+            d_y[c, 1] = -a1
+            d_y[c, 2] = -a2
+            if c == root:
+                d_mu[0] = a0
+                d_mu[1] = a1
+                d_mu[2] = a2
+        if True:
+            anc_mean[c, 0] = m0 + P00 * a0 + P01 * a1 + P02 * a2
+            anc_mean[c, 1] = m1 + P01 * a0 + P11 * a1 + P12 * a2
+            anc_mean[c, 2] = m2 + P02 * a0 + P12 * a1 + P22 * a2
+            Z0_0 = P00 * W00 + P01 * W01 + P02 * W02
+            Z0_1 = P00 * W01 + P01 * W11 + P02 * W12
+            Z0_2 = P00 * W02 + P01 * W12 + P02 * W22
+            Z1_0 = P01 * W00 + P11 * W01 + P12 * W02
+            Z1_1 = P01 * W01 + P11 * W11 + P12 * W12
+            Z1_2 = P01 * W02 + P11 * W12 + P12 * W22
+            Z2_0 = P02 * W00 + P12 * W01 + P22 * W02
+            Z2_1 = P02 * W01 + P12 * W11 + P22 * W12
+            Z2_2 = P02 * W02 + P12 * W12 + P22 * W22
+            anc_cov[c, 0, 0] = P00 - (Z0_0 * P00 + Z0_1 * P01 + Z0_2 * P02)
+            anc_cov[c, 0, 1] = P01 - (Z0_0 * P01 + Z0_1 * P11 + Z0_2 * P12)
+            anc_cov[c, 0, 2] = P02 - (Z0_0 * P02 + Z0_1 * P12 + Z0_2 * P22)
+            anc_cov[c, 1, 0] = P01 - (Z1_0 * P00 + Z1_1 * P01 + Z1_2 * P02)
+            anc_cov[c, 1, 1] = P11 - (Z1_0 * P01 + Z1_1 * P11 + Z1_2 * P12)
+            anc_cov[c, 1, 2] = P12 - (Z1_0 * P02 + Z1_1 * P12 + Z1_2 * P22)
+            anc_cov[c, 2, 0] = P02 - (Z2_0 * P00 + Z2_1 * P01 + Z2_2 * P02)
+            anc_cov[c, 2, 1] = P12 - (Z2_0 * P01 + Z2_1 * P11 + Z2_2 * P12)
+            anc_cov[c, 2, 2] = P22 - (Z2_0 * P02 + Z2_1 * P12 + Z2_2 * P22)
+    if False:
         for rg in range(R.shape[0]):
             d_R[rg, 0, 0] += dRs[rg, 0]
             d_R[rg, 0, 1] += dRs[rg, 1]
@@ -910,17 +2171,9 @@ def downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
 
 
 @njit(**_JIT)
-def _run(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths, d_y, d_R,
-         d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
+def _workspace(parent, y):
     n = parent.shape[0]
-    Pm = np.empty((n - y.shape[0], 2 * B + 1))
-    Sq = np.empty((n, 2 * B))
-    logp = upward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
-    if np.isfinite(logp):
-        downward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
-                    d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
-                    anc_mean, anc_cov)
-    return logp
+    return np.empty((n - y.shape[0], 2 * B + 1)), np.empty((n, 2 * B))
 
 
 @njit(**_JIT)
@@ -944,9 +2197,12 @@ def value_and_grad_k3(parent, lengths, y, observed, R, regime, E, err, mu):
     e1 = np.empty((0, K))
     e2 = np.empty((0, K, K))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_GRAD, d_lengths, d_y,
-                d_R, d_E, d_err, d_mu, e1, e2, e0, e1, e2)
-    if not np.isfinite(logp):
+    Pm, Sq = _workspace(parent, y)
+    logp = upward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    if np.isfinite(logp):
+        downward_grad_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, d_lengths,
+                          d_y, d_R, d_E, d_err, d_mu, e1, e2, e0, e1, e2)
+    else:
         d_lengths[:] = 0.0
         d_y[:] = 0.0
         d_R[:] = 0.0
@@ -966,9 +2222,12 @@ def loo_k3(parent, lengths, y, observed, R, regime, E, err, mu):
     e1 = np.empty((0, K))
     e2 = np.empty((0, K, K))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_LOO, e0, e1,
-                np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), loo_mean, loo_cov,
-                loo_logdens, e1, e2)
+    Pm, Sq = _workspace(parent, y)
+    logp = upward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    if np.isfinite(logp):
+        downward_loo_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, e0, e1,
+                         np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), loo_mean, loo_cov,
+                         loo_logdens, e1, e2)
     return loo_mean, loo_cov, loo_logdens, logp
 
 
@@ -981,9 +2240,12 @@ def ancestral_k3(parent, lengths, y, observed, R, regime, E, err, mu):
     e1 = np.empty((0, K))
     e2 = np.empty((0, K, K))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_ANCESTRAL, e0, e1,
-                np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), e1, e2, e0, anc_mean,
-                anc_cov)
+    Pm, Sq = _workspace(parent, y)
+    logp = upward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    if np.isfinite(logp):
+        downward_anc_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, e0, e1,
+                         np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), e1, e2, e0,
+                         anc_mean, anc_cov)
     return anc_mean, anc_cov, logp
 
 
@@ -1002,8 +2264,7 @@ def loo_logdens_draws_k3(parent, lengths, y, observed, R, regime, E, err, mu):
     ek = np.empty((K, K))
     ev = np.empty(K)
     eR = np.empty(R.shape[1:])
-    Pm = np.empty((n - ntip, 2 * B + 1))
-    Sq = np.empty((n, 2 * B))
+    Pm, Sq = _workspace(parent, y)
     for s in range(S):
         ln = lengths[s if lengths.shape[0] > 1 else 0]
         evs = err[s if err.shape[0] > 1 else 0]
@@ -1012,6 +2273,6 @@ def loo_logdens_draws_k3(parent, lengths, y, observed, R, regime, E, err, mu):
         if not np.isfinite(logp):
             out[s, :] = np.nan
             continue
-        downward_k3(parent, ln, y, observed, R[s], rgs, E[s], evs, mu[s], Pm, Sq, MODE_LOO,
-                    e0, e1, eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
+        downward_loo_k3(parent, ln, y, observed, R[s], rgs, E[s], evs, mu[s], Pm, Sq, e0, e1,
+                         eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
     return out

@@ -15,9 +15,6 @@ from numba import njit
 
 from cladewise.engine.kernels import (
     LOG_2PI,
-    MODE_ANCESTRAL,
-    MODE_GRAD,
-    MODE_LOO,
     PREFETCH_AHEAD,
     prefetch_row,
 )
@@ -388,17 +385,13 @@ def upward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
 
 
 @njit(**_JIT)
-def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
+def downward_grad_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq,
                d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
                anc_mean, anc_cov):
-    """Pass from the root to the tips after the upward pass, then the tips' terms."""
+    """Pass from the root to the tips after the upward pass, then the tips' terms (grad)."""
     n = parent.shape[0]
     ntip = y.shape[0]
-    grad = (mode & MODE_GRAD) != 0
-    anc = (mode & MODE_ANCESTRAL) != 0
-    loo = (mode & MODE_LOO) != 0
-    want_internal = grad or anc
-    if grad:
+    if True:
         d_lengths[:] = 0.0
         d_y[:] = 0.0
         d_R[:] = 0.0
@@ -613,7 +606,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
             Pm[w, 25] = m1
             Pm[w, 26] = m2
             Pm[w, 27] = m3
-            if want_internal:
+            if True:
                 # absorbing into a point mass: H = J, g = h - J m
                 H00 = J00
                 H01 = J01
@@ -629,7 +622,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 g1 = h1 - (J01 * m0 + J11 * m1 + J12 * m2 + J13 * m3)
                 g2 = h2 - (J02 * m0 + J12 * m1 + J22 * m2 + J23 * m3)
                 g3 = h3 - (J03 * m0 + J13 * m1 + J23 * m2 + J33 * m3)
-                if grad:
+                if True:
                     G00 = 0.5 * (g0 * g0 - H00)
                     G01 = 0.5 * (g0 * g1 - H01)
                     G02 = 0.5 * (g0 * g2 - H02)
@@ -656,7 +649,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                         d_mu[1] = g1
                         d_mu[2] = g2
                         d_mu[3] = g3
-                if anc:
+                if False:
                     anc_mean[c, 0] = m0
                     anc_cov[c, 0, 0] = 0.0
                     anc_cov[c, 0, 1] = 0.0
@@ -873,7 +866,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
             Pm[w, 25] = l1
             Pm[w, 26] = l2
             Pm[w, 27] = l3
-            if want_internal:
+            if True:
                 aA00 = L00 + J00
                 aA01 = L01 + J01
                 aA02 = L02 + J02
@@ -962,7 +955,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 g1 = L01 * ax0 + L11 * ax1 + L12 * ax2 + L13 * ax3 - l1
                 g2 = L02 * ax0 + L12 * ax1 + L22 * ax2 + L23 * ax3 - l2
                 g3 = L03 * ax0 + L13 * ax1 + L23 * ax2 + L33 * ax3 - l3
-                if grad:
+                if True:
                     G00 = 0.5 * (g0 * g0 - H00)
                     G01 = 0.5 * (g0 * g1 - H01)
                     G02 = 0.5 * (g0 * g2 - H02)
@@ -989,7 +982,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                         d_mu[1] = g1
                         d_mu[2] = g2
                         d_mu[3] = g3
-                if anc:
+                if False:
                     # posterior N((L + J)^-1 (l + h), (L + J)^-1)
                     aA00 = L00 + J00
                     aA01 = L01 + J01
@@ -1110,7 +1103,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
         X22 = err[c, 2, 2]
         X23 = 0.5 * (err[c, 2, 3] + err[c, 3, 2])
         X33 = err[c, 3, 3]
-        if loo:
+        if False:
             loo_mean[c, 0] = m0
             loo_mean[c, 1] = m1
             loo_mean[c, 2] = m2
@@ -1137,11 +1130,11 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
         o3 = observed[c, 3]
         q = (1 if o0 else 0) + (1 if o1 else 0) + (1 if o2 else 0) + (1 if o3 else 0)
         if q == 0:
-            if loo:
+            if False:
                 loo_logdens[c] = 0.0
-            if grad:
+            if True:
                 d_lengths[c] = 0.0
-            if anc:
+            if False:
                 anc_mean[c, 0] = m0
                 anc_mean[c, 1] = m1
                 anc_mean[c, 2] = m2
@@ -1227,7 +1220,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
         a1 = W01 * r0 + W11 * r1 + W12 * r2 + W13 * r3
         a2 = W02 * r0 + W12 * r1 + W22 * r2 + W23 * r3
         a3 = W03 * r0 + W13 * r1 + W23 * r2 + W33 * r3
-        if loo:
+        if False:
             if xD0 > 0.0 and xD1 > 0.0 and xD2 > 0.0 and xD3 > 0.0:
                 pd = xD0 * xD1 * xD2 * xD3
                 if pd > 1e-280 and pd < 1e280:
@@ -1237,7 +1230,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
             else:
                 ld = np.nan
             loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1 + a2 * r2 + a3 * r3) - 0.5 * ld - 0.5 * q * LOG_2PI
-        if grad:
+        if True:
             G00 = 0.5 * (a0 * a0 - W00)
             G01 = 0.5 * (a0 * a1 - W01)
             G02 = 0.5 * (a0 * a2 - W02)
@@ -1294,7 +1287,7 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
                 d_mu[1] = a1
                 d_mu[2] = a2
                 d_mu[3] = a3
-        if anc:
+        if False:
             anc_mean[c, 0] = m0 + P00 * a0 + P01 * a1 + P02 * a2 + P03 * a3
             anc_mean[c, 1] = m1 + P01 * a0 + P11 * a1 + P12 * a2 + P13 * a3
             anc_mean[c, 2] = m2 + P02 * a0 + P12 * a1 + P22 * a2 + P23 * a3
@@ -1331,7 +1324,1959 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
             anc_cov[c, 3, 1] = P13 - (Z3_0 * P01 + Z3_1 * P11 + Z3_2 * P12 + Z3_3 * P13)
             anc_cov[c, 3, 2] = P23 - (Z3_0 * P02 + Z3_1 * P12 + Z3_2 * P22 + Z3_3 * P23)
             anc_cov[c, 3, 3] = P33 - (Z3_0 * P03 + Z3_1 * P13 + Z3_2 * P23 + Z3_3 * P33)
-    if grad:
+    if True:
+        for rg in range(R.shape[0]):
+            d_R[rg, 0, 0] += dRs[rg, 0]
+            d_R[rg, 0, 1] += dRs[rg, 1]
+            d_R[rg, 1, 0] += dRs[rg, 1]
+            d_R[rg, 0, 2] += dRs[rg, 2]
+            d_R[rg, 2, 0] += dRs[rg, 2]
+            d_R[rg, 0, 3] += dRs[rg, 3]
+            d_R[rg, 3, 0] += dRs[rg, 3]
+            d_R[rg, 1, 1] += dRs[rg, 4]
+            d_R[rg, 1, 2] += dRs[rg, 5]
+            d_R[rg, 2, 1] += dRs[rg, 5]
+            d_R[rg, 1, 3] += dRs[rg, 6]
+            d_R[rg, 3, 1] += dRs[rg, 6]
+            d_R[rg, 2, 2] += dRs[rg, 7]
+            d_R[rg, 2, 3] += dRs[rg, 8]
+            d_R[rg, 3, 2] += dRs[rg, 8]
+            d_R[rg, 3, 3] += dRs[rg, 9]
+        d_E[0, 0] += dE00
+        d_E[0, 1] += dE01
+        d_E[1, 0] += dE01
+        d_E[0, 2] += dE02
+        d_E[2, 0] += dE02
+        d_E[0, 3] += dE03
+        d_E[3, 0] += dE03
+        d_E[1, 1] += dE11
+        d_E[1, 2] += dE12
+        d_E[2, 1] += dE12
+        d_E[1, 3] += dE13
+        d_E[3, 1] += dE13
+        d_E[2, 2] += dE22
+        d_E[2, 3] += dE23
+        d_E[3, 2] += dE23
+        d_E[3, 3] += dE33
+
+
+@njit(**_JIT)
+def downward_loo_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq,
+               d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
+               anc_mean, anc_cov):
+    """Pass from the root to the tips after the upward pass, then the tips' terms (loo)."""
+    n = parent.shape[0]
+    ntip = y.shape[0]
+    if False:
+        d_lengths[:] = 0.0
+        d_y[:] = 0.0
+        d_R[:] = 0.0
+        d_E[:] = 0.0
+        d_err[:] = 0.0
+        d_mu[:] = 0.0
+    dRs = np.zeros((R.shape[0], 10))
+    # Cholesky factor of each regime's R: V = t F F' on a branch
+    FR = np.empty((R.shape[0], 10))
+    for rg in range(R.shape[0]):
+        fd = R[rg, 0, 0]
+        F00 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F00 if fd > 0.0 else 0.0
+        F10 = (R[rg, 1, 0]) * fr
+        F20 = (R[rg, 2, 0]) * fr
+        F30 = (R[rg, 3, 0]) * fr
+        fd = R[rg, 1, 1] - F10 * F10
+        F11 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F11 if fd > 0.0 else 0.0
+        F21 = (R[rg, 2, 1] - F20 * F10) * fr
+        F31 = (R[rg, 3, 1] - F30 * F10) * fr
+        fd = R[rg, 2, 2] - F20 * F20 - F21 * F21
+        F22 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F22 if fd > 0.0 else 0.0
+        F32 = (R[rg, 3, 2] - F30 * F20 - F31 * F21) * fr
+        fd = R[rg, 3, 3] - F30 * F30 - F31 * F31 - F32 * F32
+        F33 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F33 if fd > 0.0 else 0.0
+        FR[rg, 0] = F00
+        FR[rg, 1] = F10
+        FR[rg, 2] = F20
+        FR[rg, 3] = F30
+        FR[rg, 4] = F11
+        FR[rg, 5] = F21
+        FR[rg, 6] = F31
+        FR[rg, 7] = F22
+        FR[rg, 8] = F32
+        FR[rg, 9] = F33
+    root = n - 1
+    for c in range(root, -1, -1):
+        t = lengths[c]
+        rg = regime[c]
+        if c == root:
+            point = True
+            m0 = mu[0]
+            m1 = mu[1]
+            m2 = mu[2]
+            m3 = mu[3]
+            Q00 = 0.0
+            Q01 = 0.0
+            Q02 = 0.0
+            Q03 = 0.0
+            Q11 = 0.0
+            Q12 = 0.0
+            Q13 = 0.0
+            Q22 = 0.0
+            Q23 = 0.0
+            Q33 = 0.0
+        else:
+            if c >= PREFETCH_AHEAD:
+                prefetch_row(Pm, parent[c - PREFETCH_AHEAD] - ntip)
+            p = parent[c] - ntip
+            # the other children's messages: before c (upward pass) plus after c (running sum)
+            S00 = Sq[c, 14] + Pm[p, 0]
+            S01 = Sq[c, 15] + Pm[p, 1]
+            S02 = Sq[c, 16] + Pm[p, 2]
+            S03 = Sq[c, 17] + Pm[p, 3]
+            S11 = Sq[c, 18] + Pm[p, 4]
+            S12 = Sq[c, 19] + Pm[p, 5]
+            S13 = Sq[c, 20] + Pm[p, 6]
+            S22 = Sq[c, 21] + Pm[p, 7]
+            S23 = Sq[c, 22] + Pm[p, 8]
+            S33 = Sq[c, 23] + Pm[p, 9]
+            s0 = Sq[c, 24] + Pm[p, 10]
+            s1 = Sq[c, 25] + Pm[p, 11]
+            s2 = Sq[c, 26] + Pm[p, 12]
+            s3 = Sq[c, 27] + Pm[p, 13]
+            for i in range(14):
+                Pm[p, i] += Sq[c, i]
+            point = Pm[p, 28] != 0.0
+            if point:
+                m0 = Pm[p, 24]
+                m1 = Pm[p, 25]
+                m2 = Pm[p, 26]
+                m3 = Pm[p, 27]
+                Q00 = 0.0
+                Q01 = 0.0
+                Q02 = 0.0
+                Q03 = 0.0
+                Q11 = 0.0
+                Q12 = 0.0
+                Q13 = 0.0
+                Q22 = 0.0
+                Q23 = 0.0
+                Q33 = 0.0
+            else:
+                # condition the parent's outside on them: information adds
+                C00 = Pm[p, 14]
+                C01 = Pm[p, 15]
+                C02 = Pm[p, 16]
+                C03 = Pm[p, 17]
+                C11 = Pm[p, 18]
+                C12 = Pm[p, 19]
+                C13 = Pm[p, 20]
+                C22 = Pm[p, 21]
+                C23 = Pm[p, 22]
+                C33 = Pm[p, 23]
+                e0 = Pm[p, 24]
+                e1 = Pm[p, 25]
+                e2 = Pm[p, 26]
+                e3 = Pm[p, 27]
+                C00 += S00
+                C01 += S01
+                C02 += S02
+                C03 += S03
+                C11 += S11
+                C12 += S12
+                C13 += S13
+                C22 += S22
+                C23 += S23
+                C33 += S33
+                e0 += s0
+                e1 += s1
+                e2 += s2
+                e3 += s3
+        if c < ntip:
+            # a tip's outside moment form
+            if not point:
+                xD0 = C00
+                xr0 = 1.0 / xD0
+                xL10 = (C01) * xr0
+                xL20 = (C02) * xr0
+                xL30 = (C03) * xr0
+                xw10 = xL10 * xD0
+                xD1 = C11 - xL10 * xw10
+                xr1 = 1.0 / xD1
+                xL21 = (C12 - xL20 * xw10) * xr1
+                xL31 = (C13 - xL30 * xw10) * xr1
+                xw20 = xL20 * xD0
+                xw21 = xL21 * xD1
+                xD2 = C22 - xL20 * xw20 - xL21 * xw21
+                xr2 = 1.0 / xD2
+                xL32 = (C23 - xL30 * xw20 - xL31 * xw21) * xr2
+                xw30 = xL30 * xD0
+                xw31 = xL31 * xD1
+                xw32 = xL32 * xD2
+                xD3 = C33 - xL30 * xw30 - xL31 * xw31 - xL32 * xw32
+                xr3 = 1.0 / xD3
+                xM10 = -(xL10)
+                xM20 = -(xL20 + xL21 * xM10)
+                xM30 = -(xL30 + xL31 * xM10 + xL32 * xM20)
+                xM21 = -(xL21)
+                xM31 = -(xL31 + xL32 * xM21)
+                xM32 = -(xL32)
+                Q00 = xr0 + xr1 * xM10 * xM10 + xr2 * xM20 * xM20 + xr3 * xM30 * xM30
+                Q01 = xr1 * xM10 + xr2 * xM20 * xM21 + xr3 * xM30 * xM31
+                Q02 = xr2 * xM20 + xr3 * xM30 * xM32
+                Q03 = xr3 * xM30
+                Q11 = xr1 + xr2 * xM21 * xM21 + xr3 * xM31 * xM31
+                Q12 = xr2 * xM21 + xr3 * xM31 * xM32
+                Q13 = xr3 * xM31
+                Q22 = xr2 + xr3 * xM32 * xM32
+                Q23 = xr3 * xM32
+                Q33 = xr3
+                m0 = Q00 * e0 + Q01 * e1 + Q02 * e2 + Q03 * e3
+                m1 = Q01 * e0 + Q11 * e1 + Q12 * e2 + Q13 * e3
+                m2 = Q02 * e0 + Q12 * e1 + Q22 * e2 + Q23 * e3
+                m3 = Q03 * e0 + Q13 * e1 + Q23 * e2 + Q33 * e3
+            Q00 += t * R[rg, 0, 0]
+            Q01 += t * R[rg, 1, 0]
+            Q02 += t * R[rg, 2, 0]
+            Q03 += t * R[rg, 3, 0]
+            Q11 += t * R[rg, 1, 1]
+            Q12 += t * R[rg, 2, 1]
+            Q13 += t * R[rg, 3, 1]
+            Q22 += t * R[rg, 2, 2]
+            Q23 += t * R[rg, 3, 2]
+            Q33 += t * R[rg, 3, 3]
+            Sq[c, 0] = Q00
+            Sq[c, 1] = Q01
+            Sq[c, 2] = Q02
+            Sq[c, 3] = Q03
+            Sq[c, 4] = Q11
+            Sq[c, 5] = Q12
+            Sq[c, 6] = Q13
+            Sq[c, 7] = Q22
+            Sq[c, 8] = Q23
+            Sq[c, 9] = Q33
+            Sq[c, 10] = m0
+            Sq[c, 11] = m1
+            Sq[c, 12] = m2
+            Sq[c, 13] = m3
+            continue
+        w = c - ntip
+        J00 = Pm[w, 0]
+        J01 = Pm[w, 1]
+        J02 = Pm[w, 2]
+        J03 = Pm[w, 3]
+        J11 = Pm[w, 4]
+        J12 = Pm[w, 5]
+        J13 = Pm[w, 6]
+        J22 = Pm[w, 7]
+        J23 = Pm[w, 8]
+        J33 = Pm[w, 9]
+        h0 = Pm[w, 10]
+        h1 = Pm[w, 11]
+        h2 = Pm[w, 12]
+        h3 = Pm[w, 13]
+        if point and t == 0.0:
+            Pm[w, 28] = 1.0
+            Pm[w, 24] = m0
+            Pm[w, 25] = m1
+            Pm[w, 26] = m2
+            Pm[w, 27] = m3
+            if False:
+                # absorbing into a point mass: H = J, g = h - J m
+                H00 = J00
+                H01 = J01
+                H02 = J02
+                H03 = J03
+                H11 = J11
+                H12 = J12
+                H13 = J13
+                H22 = J22
+                H23 = J23
+                H33 = J33
+                g0 = h0 - (J00 * m0 + J01 * m1 + J02 * m2 + J03 * m3)
+                g1 = h1 - (J01 * m0 + J11 * m1 + J12 * m2 + J13 * m3)
+                g2 = h2 - (J02 * m0 + J12 * m1 + J22 * m2 + J23 * m3)
+                g3 = h3 - (J03 * m0 + J13 * m1 + J23 * m2 + J33 * m3)
+                if False:
+                    G00 = 0.5 * (g0 * g0 - H00)
+                    G01 = 0.5 * (g0 * g1 - H01)
+                    G02 = 0.5 * (g0 * g2 - H02)
+                    G03 = 0.5 * (g0 * g3 - H03)
+                    G11 = 0.5 * (g1 * g1 - H11)
+                    G12 = 0.5 * (g1 * g2 - H12)
+                    G13 = 0.5 * (g1 * g3 - H13)
+                    G22 = 0.5 * (g2 * g2 - H22)
+                    G23 = 0.5 * (g2 * g3 - H23)
+                    G33 = 0.5 * (g3 * g3 - H33)
+                    d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + (R[rg, 0, 3] + R[rg, 3, 0]) * G03 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + (R[rg, 1, 3] + R[rg, 3, 1]) * G13 + R[rg, 2, 2] * G22 + (R[rg, 2, 3] + R[rg, 3, 2]) * G23 + R[rg, 3, 3] * G33
+                    dRs[rg, 0] += t * G00
+                    dRs[rg, 1] += t * G01
+                    dRs[rg, 2] += t * G02
+                    dRs[rg, 3] += t * G03
+                    dRs[rg, 4] += t * G11
+                    dRs[rg, 5] += t * G12
+                    dRs[rg, 6] += t * G13
+                    dRs[rg, 7] += t * G22
+                    dRs[rg, 8] += t * G23
+                    dRs[rg, 9] += t * G33
+                    if c == root:
+                        d_mu[0] = g0
+                        d_mu[1] = g1
+                        d_mu[2] = g2
+                        d_mu[3] = g3
+                if False:
+                    anc_mean[c, 0] = m0
+                    anc_cov[c, 0, 0] = 0.0
+                    anc_cov[c, 0, 1] = 0.0
+                    anc_cov[c, 0, 2] = 0.0
+                    anc_cov[c, 0, 3] = 0.0
+                    anc_mean[c, 1] = m1
+                    anc_cov[c, 1, 0] = 0.0
+                    anc_cov[c, 1, 1] = 0.0
+                    anc_cov[c, 1, 2] = 0.0
+                    anc_cov[c, 1, 3] = 0.0
+                    anc_mean[c, 2] = m2
+                    anc_cov[c, 2, 0] = 0.0
+                    anc_cov[c, 2, 1] = 0.0
+                    anc_cov[c, 2, 2] = 0.0
+                    anc_cov[c, 2, 3] = 0.0
+                    anc_mean[c, 3] = m3
+                    anc_cov[c, 3, 0] = 0.0
+                    anc_cov[c, 3, 1] = 0.0
+                    anc_cov[c, 3, 2] = 0.0
+                    anc_cov[c, 3, 3] = 0.0
+        else:
+            Pm[w, 28] = 0.0
+            if point:
+                # below a point mass m: outside N(m, t R)
+                Q00 = t * R[rg, 0, 0]
+                Q01 = t * R[rg, 1, 0]
+                Q02 = t * R[rg, 2, 0]
+                Q03 = t * R[rg, 3, 0]
+                Q11 = t * R[rg, 1, 1]
+                Q12 = t * R[rg, 2, 1]
+                Q13 = t * R[rg, 3, 1]
+                Q22 = t * R[rg, 2, 2]
+                Q23 = t * R[rg, 3, 2]
+                Q33 = t * R[rg, 3, 3]
+                yD0 = Q00
+                yr0 = 1.0 / yD0
+                yL10 = (Q01) * yr0
+                yL20 = (Q02) * yr0
+                yL30 = (Q03) * yr0
+                yw10 = yL10 * yD0
+                yD1 = Q11 - yL10 * yw10
+                yr1 = 1.0 / yD1
+                yL21 = (Q12 - yL20 * yw10) * yr1
+                yL31 = (Q13 - yL30 * yw10) * yr1
+                yw20 = yL20 * yD0
+                yw21 = yL21 * yD1
+                yD2 = Q22 - yL20 * yw20 - yL21 * yw21
+                yr2 = 1.0 / yD2
+                yL32 = (Q23 - yL30 * yw20 - yL31 * yw21) * yr2
+                yw30 = yL30 * yD0
+                yw31 = yL31 * yD1
+                yw32 = yL32 * yD2
+                yD3 = Q33 - yL30 * yw30 - yL31 * yw31 - yL32 * yw32
+                yr3 = 1.0 / yD3
+                yM10 = -(yL10)
+                yM20 = -(yL20 + yL21 * yM10)
+                yM30 = -(yL30 + yL31 * yM10 + yL32 * yM20)
+                yM21 = -(yL21)
+                yM31 = -(yL31 + yL32 * yM21)
+                yM32 = -(yL32)
+                L00 = yr0 + yr1 * yM10 * yM10 + yr2 * yM20 * yM20 + yr3 * yM30 * yM30
+                L01 = yr1 * yM10 + yr2 * yM20 * yM21 + yr3 * yM30 * yM31
+                L02 = yr2 * yM20 + yr3 * yM30 * yM32
+                L03 = yr3 * yM30
+                L11 = yr1 + yr2 * yM21 * yM21 + yr3 * yM31 * yM31
+                L12 = yr2 * yM21 + yr3 * yM31 * yM32
+                L13 = yr3 * yM31
+                L22 = yr2 + yr3 * yM32 * yM32
+                L23 = yr3 * yM32
+                L33 = yr3
+                l0 = L00 * m0 + L01 * m1 + L02 * m2 + L03 * m3
+                l1 = L01 * m0 + L11 * m1 + L12 * m2 + L13 * m3
+                l2 = L02 * m0 + L12 * m1 + L22 * m2 + L23 * m3
+                l3 = L03 * m0 + L13 * m1 + L23 * m2 + L33 * m3
+            elif t == 0.0:
+                # a zero-length branch: the outside information is the conditioned parent's
+                L00 = C00
+                L01 = C01
+                L02 = C02
+                L03 = C03
+                L11 = C11
+                L12 = C12
+                L13 = C13
+                L22 = C22
+                L23 = C23
+                L33 = C33
+                l0 = e0
+                l1 = e1
+                l2 = e2
+                l3 = e3
+            else:
+                # push the conditioned parent's information across the branch (V = t F F')
+                F00 = FR[rg, 0]
+                F10 = FR[rg, 1]
+                F20 = FR[rg, 2]
+                F30 = FR[rg, 3]
+                F11 = FR[rg, 4]
+                F21 = FR[rg, 5]
+                F31 = FR[rg, 6]
+                F22 = FR[rg, 7]
+                F32 = FR[rg, 8]
+                F33 = FR[rg, 9]
+                vU0_0 = C00 * F00 + C01 * F10 + C02 * F20 + C03 * F30
+                vU0_1 = C01 * F11 + C02 * F21 + C03 * F31
+                vU0_2 = C02 * F22 + C03 * F32
+                vU0_3 = C03 * F33
+                vU1_0 = C01 * F00 + C11 * F10 + C12 * F20 + C13 * F30
+                vU1_1 = C11 * F11 + C12 * F21 + C13 * F31
+                vU1_2 = C12 * F22 + C13 * F32
+                vU1_3 = C13 * F33
+                vU2_0 = C02 * F00 + C12 * F10 + C22 * F20 + C23 * F30
+                vU2_1 = C12 * F11 + C22 * F21 + C23 * F31
+                vU2_2 = C22 * F22 + C23 * F32
+                vU2_3 = C23 * F33
+                vU3_0 = C03 * F00 + C13 * F10 + C23 * F20 + C33 * F30
+                vU3_1 = C13 * F11 + C23 * F21 + C33 * F31
+                vU3_2 = C23 * F22 + C33 * F32
+                vU3_3 = C33 * F33
+                vA00 = 1.0 + t * (F00 * vU0_0 + F10 * vU1_0 + F20 * vU2_0 + F30 * vU3_0)
+                vA01 = t * (F00 * vU0_1 + F10 * vU1_1 + F20 * vU2_1 + F30 * vU3_1)
+                vA02 = t * (F00 * vU0_2 + F10 * vU1_2 + F20 * vU2_2 + F30 * vU3_2)
+                vA03 = t * (F00 * vU0_3 + F10 * vU1_3 + F20 * vU2_3 + F30 * vU3_3)
+                vA11 = 1.0 + t * (F11 * vU1_1 + F21 * vU2_1 + F31 * vU3_1)
+                vA12 = t * (F11 * vU1_2 + F21 * vU2_2 + F31 * vU3_2)
+                vA13 = t * (F11 * vU1_3 + F21 * vU2_3 + F31 * vU3_3)
+                vA22 = 1.0 + t * (F22 * vU2_2 + F32 * vU3_2)
+                vA23 = t * (F22 * vU2_3 + F32 * vU3_3)
+                vA33 = 1.0 + t * (F33 * vU3_3)
+                vD0 = vA00
+                vr0 = 1.0 / vD0
+                vL10 = (vA01) * vr0
+                vL20 = (vA02) * vr0
+                vL30 = (vA03) * vr0
+                vw10 = vL10 * vD0
+                vD1 = vA11 - vL10 * vw10
+                vr1 = 1.0 / vD1
+                vL21 = (vA12 - vL20 * vw10) * vr1
+                vL31 = (vA13 - vL30 * vw10) * vr1
+                vw20 = vL20 * vD0
+                vw21 = vL21 * vD1
+                vD2 = vA22 - vL20 * vw20 - vL21 * vw21
+                vr2 = 1.0 / vD2
+                vL32 = (vA23 - vL30 * vw20 - vL31 * vw21) * vr2
+                vw30 = vL30 * vD0
+                vw31 = vL31 * vD1
+                vw32 = vL32 * vD2
+                vD3 = vA33 - vL30 * vw30 - vL31 * vw31 - vL32 * vw32
+                vr3 = 1.0 / vD3
+                vY0_0 = vU0_0
+                vY0_1 = vU0_1 - vY0_0 * vL10
+                vY0_2 = vU0_2 - vY0_0 * vL20 - vY0_1 * vL21
+                vY0_3 = vU0_3 - vY0_0 * vL30 - vY0_1 * vL31 - vY0_2 * vL32
+                vY1_0 = vU1_0
+                vY1_1 = vU1_1 - vY1_0 * vL10
+                vY1_2 = vU1_2 - vY1_0 * vL20 - vY1_1 * vL21
+                vY1_3 = vU1_3 - vY1_0 * vL30 - vY1_1 * vL31 - vY1_2 * vL32
+                vY2_0 = vU2_0
+                vY2_1 = vU2_1 - vY2_0 * vL10
+                vY2_2 = vU2_2 - vY2_0 * vL20 - vY2_1 * vL21
+                vY2_3 = vU2_3 - vY2_0 * vL30 - vY2_1 * vL31 - vY2_2 * vL32
+                vY3_0 = vU3_0
+                vY3_1 = vU3_1 - vY3_0 * vL10
+                vY3_2 = vU3_2 - vY3_0 * vL20 - vY3_1 * vL21
+                vY3_3 = vU3_3 - vY3_0 * vL30 - vY3_1 * vL31 - vY3_2 * vL32
+                vZ0_0 = vY0_0 * vr0
+                vZ0_1 = vY0_1 * vr1
+                vZ0_2 = vY0_2 * vr2
+                vZ0_3 = vY0_3 * vr3
+                vZ1_0 = vY1_0 * vr0
+                vZ1_1 = vY1_1 * vr1
+                vZ1_2 = vY1_2 * vr2
+                vZ1_3 = vY1_3 * vr3
+                vZ2_0 = vY2_0 * vr0
+                vZ2_1 = vY2_1 * vr1
+                vZ2_2 = vY2_2 * vr2
+                vZ2_3 = vY2_3 * vr3
+                vZ3_0 = vY3_0 * vr0
+                vZ3_1 = vY3_1 * vr1
+                vZ3_2 = vY3_2 * vr2
+                vZ3_3 = vY3_3 * vr3
+                L00 = C00 - t * (vZ0_0 * vY0_0 + vZ0_1 * vY0_1 + vZ0_2 * vY0_2 + vZ0_3 * vY0_3)
+                L01 = C01 - t * (vZ0_0 * vY1_0 + vZ0_1 * vY1_1 + vZ0_2 * vY1_2 + vZ0_3 * vY1_3)
+                L02 = C02 - t * (vZ0_0 * vY2_0 + vZ0_1 * vY2_1 + vZ0_2 * vY2_2 + vZ0_3 * vY2_3)
+                L03 = C03 - t * (vZ0_0 * vY3_0 + vZ0_1 * vY3_1 + vZ0_2 * vY3_2 + vZ0_3 * vY3_3)
+                L11 = C11 - t * (vZ1_0 * vY1_0 + vZ1_1 * vY1_1 + vZ1_2 * vY1_2 + vZ1_3 * vY1_3)
+                L12 = C12 - t * (vZ1_0 * vY2_0 + vZ1_1 * vY2_1 + vZ1_2 * vY2_2 + vZ1_3 * vY2_3)
+                L13 = C13 - t * (vZ1_0 * vY3_0 + vZ1_1 * vY3_1 + vZ1_2 * vY3_2 + vZ1_3 * vY3_3)
+                L22 = C22 - t * (vZ2_0 * vY2_0 + vZ2_1 * vY2_1 + vZ2_2 * vY2_2 + vZ2_3 * vY2_3)
+                L23 = C23 - t * (vZ2_0 * vY3_0 + vZ2_1 * vY3_1 + vZ2_2 * vY3_2 + vZ2_3 * vY3_3)
+                L33 = C33 - t * (vZ3_0 * vY3_0 + vZ3_1 * vY3_1 + vZ3_2 * vY3_2 + vZ3_3 * vY3_3)
+                vz0 = F00 * e0 + F10 * e1 + F20 * e2 + F30 * e3
+                vz1 = F11 * e1 + F21 * e2 + F31 * e3
+                vz2 = F22 * e2 + F32 * e3
+                vz3 = F33 * e3
+                vx0 = vz0
+                vx1 = vz1 - vL10 * vx0
+                vx2 = vz2 - vL20 * vx0 - vL21 * vx1
+                vx3 = vz3 - vL30 * vx0 - vL31 * vx1 - vL32 * vx2
+                l0 = e0 - t * (vZ0_0 * vx0 + vZ0_1 * vx1 + vZ0_2 * vx2 + vZ0_3 * vx3)
+                l1 = e1 - t * (vZ1_0 * vx0 + vZ1_1 * vx1 + vZ1_2 * vx2 + vZ1_3 * vx3)
+                l2 = e2 - t * (vZ2_0 * vx0 + vZ2_1 * vx1 + vZ2_2 * vx2 + vZ2_3 * vx3)
+                l3 = e3 - t * (vZ3_0 * vx0 + vZ3_1 * vx1 + vZ3_2 * vx2 + vZ3_3 * vx3)
+            Pm[w, 14] = L00
+            Pm[w, 15] = L01
+            Pm[w, 16] = L02
+            Pm[w, 17] = L03
+            Pm[w, 18] = L11
+            Pm[w, 19] = L12
+            Pm[w, 20] = L13
+            Pm[w, 21] = L22
+            Pm[w, 22] = L23
+            Pm[w, 23] = L33
+            Pm[w, 24] = l0
+            Pm[w, 25] = l1
+            Pm[w, 26] = l2
+            Pm[w, 27] = l3
+            if False:
+                aA00 = L00 + J00
+                aA01 = L01 + J01
+                aA02 = L02 + J02
+                aA03 = L03 + J03
+                aA11 = L11 + J11
+                aA12 = L12 + J12
+                aA13 = L13 + J13
+                aA22 = L22 + J22
+                aA23 = L23 + J23
+                aA33 = L33 + J33
+                aD0 = aA00
+                ar0 = 1.0 / aD0
+                aL10 = (aA01) * ar0
+                aL20 = (aA02) * ar0
+                aL30 = (aA03) * ar0
+                aw10 = aL10 * aD0
+                aD1 = aA11 - aL10 * aw10
+                ar1 = 1.0 / aD1
+                aL21 = (aA12 - aL20 * aw10) * ar1
+                aL31 = (aA13 - aL30 * aw10) * ar1
+                aw20 = aL20 * aD0
+                aw21 = aL21 * aD1
+                aD2 = aA22 - aL20 * aw20 - aL21 * aw21
+                ar2 = 1.0 / aD2
+                aL32 = (aA23 - aL30 * aw20 - aL31 * aw21) * ar2
+                aw30 = aL30 * aD0
+                aw31 = aL31 * aD1
+                aw32 = aL32 * aD2
+                aD3 = aA33 - aL30 * aw30 - aL31 * aw31 - aL32 * aw32
+                ar3 = 1.0 / aD3
+                aY0_0 = J00
+                aY0_1 = J01 - aY0_0 * aL10
+                aY0_2 = J02 - aY0_0 * aL20 - aY0_1 * aL21
+                aY0_3 = J03 - aY0_0 * aL30 - aY0_1 * aL31 - aY0_2 * aL32
+                aY1_0 = J01
+                aY1_1 = J11 - aY1_0 * aL10
+                aY1_2 = J12 - aY1_0 * aL20 - aY1_1 * aL21
+                aY1_3 = J13 - aY1_0 * aL30 - aY1_1 * aL31 - aY1_2 * aL32
+                aY2_0 = J02
+                aY2_1 = J12 - aY2_0 * aL10
+                aY2_2 = J22 - aY2_0 * aL20 - aY2_1 * aL21
+                aY2_3 = J23 - aY2_0 * aL30 - aY2_1 * aL31 - aY2_2 * aL32
+                aY3_0 = J03
+                aY3_1 = J13 - aY3_0 * aL10
+                aY3_2 = J23 - aY3_0 * aL20 - aY3_1 * aL21
+                aY3_3 = J33 - aY3_0 * aL30 - aY3_1 * aL31 - aY3_2 * aL32
+                aZ0_0 = aY0_0 * ar0
+                aZ0_1 = aY0_1 * ar1
+                aZ0_2 = aY0_2 * ar2
+                aZ0_3 = aY0_3 * ar3
+                aZ1_0 = aY1_0 * ar0
+                aZ1_1 = aY1_1 * ar1
+                aZ1_2 = aY1_2 * ar2
+                aZ1_3 = aY1_3 * ar3
+                aZ2_0 = aY2_0 * ar0
+                aZ2_1 = aY2_1 * ar1
+                aZ2_2 = aY2_2 * ar2
+                aZ2_3 = aY2_3 * ar3
+                aZ3_0 = aY3_0 * ar0
+                aZ3_1 = aY3_1 * ar1
+                aZ3_2 = aY3_2 * ar2
+                aZ3_3 = aY3_3 * ar3
+                H00 = J00 - (aZ0_0 * aY0_0 + aZ0_1 * aY0_1 + aZ0_2 * aY0_2 + aZ0_3 * aY0_3)
+                H01 = J01 - (aZ0_0 * aY1_0 + aZ0_1 * aY1_1 + aZ0_2 * aY1_2 + aZ0_3 * aY1_3)
+                H02 = J02 - (aZ0_0 * aY2_0 + aZ0_1 * aY2_1 + aZ0_2 * aY2_2 + aZ0_3 * aY2_3)
+                H03 = J03 - (aZ0_0 * aY3_0 + aZ0_1 * aY3_1 + aZ0_2 * aY3_2 + aZ0_3 * aY3_3)
+                H11 = J11 - (aZ1_0 * aY1_0 + aZ1_1 * aY1_1 + aZ1_2 * aY1_2 + aZ1_3 * aY1_3)
+                H12 = J12 - (aZ1_0 * aY2_0 + aZ1_1 * aY2_1 + aZ1_2 * aY2_2 + aZ1_3 * aY2_3)
+                H13 = J13 - (aZ1_0 * aY3_0 + aZ1_1 * aY3_1 + aZ1_2 * aY3_2 + aZ1_3 * aY3_3)
+                H22 = J22 - (aZ2_0 * aY2_0 + aZ2_1 * aY2_1 + aZ2_2 * aY2_2 + aZ2_3 * aY2_3)
+                H23 = J23 - (aZ2_0 * aY3_0 + aZ2_1 * aY3_1 + aZ2_2 * aY3_2 + aZ2_3 * aY3_3)
+                H33 = J33 - (aZ3_0 * aY3_0 + aZ3_1 * aY3_1 + aZ3_2 * aY3_2 + aZ3_3 * aY3_3)
+                ax0 = h0 + l0
+                ax1 = h1 + l1 - aL10 * ax0
+                ax2 = h2 + l2 - aL20 * ax0 - aL21 * ax1
+                ax3 = h3 + l3 - aL30 * ax0 - aL31 * ax1 - aL32 * ax2
+                ax0 *= ar0
+                ax1 *= ar1
+                ax2 *= ar2
+                ax3 *= ar3
+                ax3 = ax3
+                ax2 = ax2 - aL32 * ax3
+                ax1 = ax1 - aL21 * ax2 - aL31 * ax3
+                ax0 = ax0 - aL10 * ax1 - aL20 * ax2 - aL30 * ax3
+                g0 = L00 * ax0 + L01 * ax1 + L02 * ax2 + L03 * ax3 - l0
+                g1 = L01 * ax0 + L11 * ax1 + L12 * ax2 + L13 * ax3 - l1
+                g2 = L02 * ax0 + L12 * ax1 + L22 * ax2 + L23 * ax3 - l2
+                g3 = L03 * ax0 + L13 * ax1 + L23 * ax2 + L33 * ax3 - l3
+                if False:
+                    G00 = 0.5 * (g0 * g0 - H00)
+                    G01 = 0.5 * (g0 * g1 - H01)
+                    G02 = 0.5 * (g0 * g2 - H02)
+                    G03 = 0.5 * (g0 * g3 - H03)
+                    G11 = 0.5 * (g1 * g1 - H11)
+                    G12 = 0.5 * (g1 * g2 - H12)
+                    G13 = 0.5 * (g1 * g3 - H13)
+                    G22 = 0.5 * (g2 * g2 - H22)
+                    G23 = 0.5 * (g2 * g3 - H23)
+                    G33 = 0.5 * (g3 * g3 - H33)
+                    d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + (R[rg, 0, 3] + R[rg, 3, 0]) * G03 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + (R[rg, 1, 3] + R[rg, 3, 1]) * G13 + R[rg, 2, 2] * G22 + (R[rg, 2, 3] + R[rg, 3, 2]) * G23 + R[rg, 3, 3] * G33
+                    dRs[rg, 0] += t * G00
+                    dRs[rg, 1] += t * G01
+                    dRs[rg, 2] += t * G02
+                    dRs[rg, 3] += t * G03
+                    dRs[rg, 4] += t * G11
+                    dRs[rg, 5] += t * G12
+                    dRs[rg, 6] += t * G13
+                    dRs[rg, 7] += t * G22
+                    dRs[rg, 8] += t * G23
+                    dRs[rg, 9] += t * G33
+                    if c == root:
+                        d_mu[0] = g0
+                        d_mu[1] = g1
+                        d_mu[2] = g2
+                        d_mu[3] = g3
+                if False:
+                    # posterior N((L + J)^-1 (l + h), (L + J)^-1)
+                    aA00 = L00 + J00
+                    aA01 = L01 + J01
+                    aA02 = L02 + J02
+                    aA03 = L03 + J03
+                    aA11 = L11 + J11
+                    aA12 = L12 + J12
+                    aA13 = L13 + J13
+                    aA22 = L22 + J22
+                    aA23 = L23 + J23
+                    aA33 = L33 + J33
+                    zD0 = aA00
+                    zr0 = 1.0 / zD0
+                    zL10 = (aA01) * zr0
+                    zL20 = (aA02) * zr0
+                    zL30 = (aA03) * zr0
+                    zw10 = zL10 * zD0
+                    zD1 = aA11 - zL10 * zw10
+                    zr1 = 1.0 / zD1
+                    zL21 = (aA12 - zL20 * zw10) * zr1
+                    zL31 = (aA13 - zL30 * zw10) * zr1
+                    zw20 = zL20 * zD0
+                    zw21 = zL21 * zD1
+                    zD2 = aA22 - zL20 * zw20 - zL21 * zw21
+                    zr2 = 1.0 / zD2
+                    zL32 = (aA23 - zL30 * zw20 - zL31 * zw21) * zr2
+                    zw30 = zL30 * zD0
+                    zw31 = zL31 * zD1
+                    zw32 = zL32 * zD2
+                    zD3 = aA33 - zL30 * zw30 - zL31 * zw31 - zL32 * zw32
+                    zr3 = 1.0 / zD3
+                    zM10 = -(zL10)
+                    zM20 = -(zL20 + zL21 * zM10)
+                    zM30 = -(zL30 + zL31 * zM10 + zL32 * zM20)
+                    zM21 = -(zL21)
+                    zM31 = -(zL31 + zL32 * zM21)
+                    zM32 = -(zL32)
+                    Z00 = zr0 + zr1 * zM10 * zM10 + zr2 * zM20 * zM20 + zr3 * zM30 * zM30
+                    Z01 = zr1 * zM10 + zr2 * zM20 * zM21 + zr3 * zM30 * zM31
+                    Z02 = zr2 * zM20 + zr3 * zM30 * zM32
+                    Z03 = zr3 * zM30
+                    Z11 = zr1 + zr2 * zM21 * zM21 + zr3 * zM31 * zM31
+                    Z12 = zr2 * zM21 + zr3 * zM31 * zM32
+                    Z13 = zr3 * zM31
+                    Z22 = zr2 + zr3 * zM32 * zM32
+                    Z23 = zr3 * zM32
+                    Z33 = zr3
+                    u0 = l0 + h0
+                    u1 = l1 + h1
+                    u2 = l2 + h2
+                    u3 = l3 + h3
+                    anc_mean[c, 0] = Z00 * u0 + Z01 * u1 + Z02 * u2 + Z03 * u3
+                    anc_cov[c, 0, 0] = Z00
+                    anc_cov[c, 0, 1] = Z01
+                    anc_cov[c, 0, 2] = Z02
+                    anc_cov[c, 0, 3] = Z03
+                    anc_mean[c, 1] = Z01 * u0 + Z11 * u1 + Z12 * u2 + Z13 * u3
+                    anc_cov[c, 1, 0] = Z01
+                    anc_cov[c, 1, 1] = Z11
+                    anc_cov[c, 1, 2] = Z12
+                    anc_cov[c, 1, 3] = Z13
+                    anc_mean[c, 2] = Z02 * u0 + Z12 * u1 + Z22 * u2 + Z23 * u3
+                    anc_cov[c, 2, 0] = Z02
+                    anc_cov[c, 2, 1] = Z12
+                    anc_cov[c, 2, 2] = Z22
+                    anc_cov[c, 2, 3] = Z23
+                    anc_mean[c, 3] = Z03 * u0 + Z13 * u1 + Z23 * u2 + Z33 * u3
+                    anc_cov[c, 3, 0] = Z03
+                    anc_cov[c, 3, 1] = Z13
+                    anc_cov[c, 3, 2] = Z23
+                    anc_cov[c, 3, 3] = Z33
+        for i in range(14):
+            Pm[w, i] = 0.0
+    dE00 = 0.0
+    dE01 = 0.0
+    dE02 = 0.0
+    dE03 = 0.0
+    dE11 = 0.0
+    dE12 = 0.0
+    dE13 = 0.0
+    dE22 = 0.0
+    dE23 = 0.0
+    dE33 = 0.0
+    E00 = E[0, 0]
+    E01 = E[1, 0]
+    E02 = E[2, 0]
+    E03 = E[3, 0]
+    E11 = E[1, 1]
+    E12 = E[2, 1]
+    E13 = E[3, 1]
+    E22 = E[2, 2]
+    E23 = E[3, 2]
+    E33 = E[3, 3]
+    for c in range(ntip):
+        t = lengths[c]
+        rg = regime[c]
+        P00 = Sq[c, 0]
+        P01 = Sq[c, 1]
+        P02 = Sq[c, 2]
+        P03 = Sq[c, 3]
+        P11 = Sq[c, 4]
+        P12 = Sq[c, 5]
+        P13 = Sq[c, 6]
+        P22 = Sq[c, 7]
+        P23 = Sq[c, 8]
+        P33 = Sq[c, 9]
+        m0 = Sq[c, 10]
+        m1 = Sq[c, 11]
+        m2 = Sq[c, 12]
+        m3 = Sq[c, 13]
+        X00 = err[c, 0, 0]
+        X01 = 0.5 * (err[c, 0, 1] + err[c, 1, 0])
+        X02 = 0.5 * (err[c, 0, 2] + err[c, 2, 0])
+        X03 = 0.5 * (err[c, 0, 3] + err[c, 3, 0])
+        X11 = err[c, 1, 1]
+        X12 = 0.5 * (err[c, 1, 2] + err[c, 2, 1])
+        X13 = 0.5 * (err[c, 1, 3] + err[c, 3, 1])
+        X22 = err[c, 2, 2]
+        X23 = 0.5 * (err[c, 2, 3] + err[c, 3, 2])
+        X33 = err[c, 3, 3]
+        if True:
+            loo_mean[c, 0] = m0
+            loo_mean[c, 1] = m1
+            loo_mean[c, 2] = m2
+            loo_mean[c, 3] = m3
+            loo_cov[c, 0, 0] = P00 + E[0, 0] + X00
+            loo_cov[c, 0, 1] = P01 + E[0, 1] + X01
+            loo_cov[c, 0, 2] = P02 + E[0, 2] + X02
+            loo_cov[c, 0, 3] = P03 + E[0, 3] + X03
+            loo_cov[c, 1, 0] = P01 + E[1, 0] + X01
+            loo_cov[c, 1, 1] = P11 + E[1, 1] + X11
+            loo_cov[c, 1, 2] = P12 + E[1, 2] + X12
+            loo_cov[c, 1, 3] = P13 + E[1, 3] + X13
+            loo_cov[c, 2, 0] = P02 + E[2, 0] + X02
+            loo_cov[c, 2, 1] = P12 + E[2, 1] + X12
+            loo_cov[c, 2, 2] = P22 + E[2, 2] + X22
+            loo_cov[c, 2, 3] = P23 + E[2, 3] + X23
+            loo_cov[c, 3, 0] = P03 + E[3, 0] + X03
+            loo_cov[c, 3, 1] = P13 + E[3, 1] + X13
+            loo_cov[c, 3, 2] = P23 + E[3, 2] + X23
+            loo_cov[c, 3, 3] = P33 + E[3, 3] + X33
+        o0 = observed[c, 0]
+        o1 = observed[c, 1]
+        o2 = observed[c, 2]
+        o3 = observed[c, 3]
+        q = (1 if o0 else 0) + (1 if o1 else 0) + (1 if o2 else 0) + (1 if o3 else 0)
+        if q == 0:
+            if True:
+                loo_logdens[c] = 0.0
+            if False:
+                d_lengths[c] = 0.0
+            if False:
+                anc_mean[c, 0] = m0
+                anc_mean[c, 1] = m1
+                anc_mean[c, 2] = m2
+                anc_mean[c, 3] = m3
+                anc_cov[c, 0, 0] = P00
+                anc_cov[c, 0, 1] = P01
+                anc_cov[c, 0, 2] = P02
+                anc_cov[c, 0, 3] = P03
+                anc_cov[c, 1, 0] = P01
+                anc_cov[c, 1, 1] = P11
+                anc_cov[c, 1, 2] = P12
+                anc_cov[c, 1, 3] = P13
+                anc_cov[c, 2, 0] = P02
+                anc_cov[c, 2, 1] = P12
+                anc_cov[c, 2, 2] = P22
+                anc_cov[c, 2, 3] = P23
+                anc_cov[c, 3, 0] = P03
+                anc_cov[c, 3, 1] = P13
+                anc_cov[c, 3, 2] = P23
+                anc_cov[c, 3, 3] = P33
+            continue
+        K00 = (P00 + E00 + X00) if o0 else 1.0
+        K01 = (P01 + E01 + X01) if o0 and o1 else 0.0
+        K02 = (P02 + E02 + X02) if o0 and o2 else 0.0
+        K03 = (P03 + E03 + X03) if o0 and o3 else 0.0
+        K11 = (P11 + E11 + X11) if o1 else 1.0
+        K12 = (P12 + E12 + X12) if o1 and o2 else 0.0
+        K13 = (P13 + E13 + X13) if o1 and o3 else 0.0
+        K22 = (P22 + E22 + X22) if o2 else 1.0
+        K23 = (P23 + E23 + X23) if o2 and o3 else 0.0
+        K33 = (P33 + E33 + X33) if o3 else 1.0
+        xD0 = K00
+        xr0 = 1.0 / xD0
+        xL10 = (K01) * xr0
+        xL20 = (K02) * xr0
+        xL30 = (K03) * xr0
+        xw10 = xL10 * xD0
+        xD1 = K11 - xL10 * xw10
+        xr1 = 1.0 / xD1
+        xL21 = (K12 - xL20 * xw10) * xr1
+        xL31 = (K13 - xL30 * xw10) * xr1
+        xw20 = xL20 * xD0
+        xw21 = xL21 * xD1
+        xD2 = K22 - xL20 * xw20 - xL21 * xw21
+        xr2 = 1.0 / xD2
+        xL32 = (K23 - xL30 * xw20 - xL31 * xw21) * xr2
+        xw30 = xL30 * xD0
+        xw31 = xL31 * xD1
+        xw32 = xL32 * xD2
+        xD3 = K33 - xL30 * xw30 - xL31 * xw31 - xL32 * xw32
+        xr3 = 1.0 / xD3
+        xM10 = -(xL10)
+        xM20 = -(xL20 + xL21 * xM10)
+        xM30 = -(xL30 + xL31 * xM10 + xL32 * xM20)
+        xM21 = -(xL21)
+        xM31 = -(xL31 + xL32 * xM21)
+        xM32 = -(xL32)
+        W00 = xr0 + xr1 * xM10 * xM10 + xr2 * xM20 * xM20 + xr3 * xM30 * xM30
+        W01 = xr1 * xM10 + xr2 * xM20 * xM21 + xr3 * xM30 * xM31
+        W02 = xr2 * xM20 + xr3 * xM30 * xM32
+        W03 = xr3 * xM30
+        W11 = xr1 + xr2 * xM21 * xM21 + xr3 * xM31 * xM31
+        W12 = xr2 * xM21 + xr3 * xM31 * xM32
+        W13 = xr3 * xM31
+        W22 = xr2 + xr3 * xM32 * xM32
+        W23 = xr3 * xM32
+        W33 = xr3
+        W00 = W00 if o0 else 0.0
+        W01 = W01 if o0 and o1 else 0.0
+        W02 = W02 if o0 and o2 else 0.0
+        W03 = W03 if o0 and o3 else 0.0
+        W11 = W11 if o1 else 0.0
+        W12 = W12 if o1 and o2 else 0.0
+        W13 = W13 if o1 and o3 else 0.0
+        W22 = W22 if o2 else 0.0
+        W23 = W23 if o2 and o3 else 0.0
+        W33 = W33 if o3 else 0.0
+        r0 = (y[c, 0] - m0) if o0 else 0.0
+        r1 = (y[c, 1] - m1) if o1 else 0.0
+        r2 = (y[c, 2] - m2) if o2 else 0.0
+        r3 = (y[c, 3] - m3) if o3 else 0.0
+        a0 = W00 * r0 + W01 * r1 + W02 * r2 + W03 * r3
+        a1 = W01 * r0 + W11 * r1 + W12 * r2 + W13 * r3
+        a2 = W02 * r0 + W12 * r1 + W22 * r2 + W23 * r3
+        a3 = W03 * r0 + W13 * r1 + W23 * r2 + W33 * r3
+        if True:
+            if xD0 > 0.0 and xD1 > 0.0 and xD2 > 0.0 and xD3 > 0.0:
+                pd = xD0 * xD1 * xD2 * xD3
+                if pd > 1e-280 and pd < 1e280:
+                    ld = math.log(pd)
+                else:
+                    ld = math.log(xD0) + math.log(xD1) + math.log(xD2) + math.log(xD3)
+            else:
+                ld = np.nan
+            loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1 + a2 * r2 + a3 * r3) - 0.5 * ld - 0.5 * q * LOG_2PI
+        if False:
+            G00 = 0.5 * (a0 * a0 - W00)
+            G01 = 0.5 * (a0 * a1 - W01)
+            G02 = 0.5 * (a0 * a2 - W02)
+            G03 = 0.5 * (a0 * a3 - W03)
+            G11 = 0.5 * (a1 * a1 - W11)
+            G12 = 0.5 * (a1 * a2 - W12)
+            G13 = 0.5 * (a1 * a3 - W13)
+            G22 = 0.5 * (a2 * a2 - W22)
+            G23 = 0.5 * (a2 * a3 - W23)
+            G33 = 0.5 * (a3 * a3 - W33)
+            d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + (R[rg, 0, 3] + R[rg, 3, 0]) * G03 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + (R[rg, 1, 3] + R[rg, 3, 1]) * G13 + R[rg, 2, 2] * G22 + (R[rg, 2, 3] + R[rg, 3, 2]) * G23 + R[rg, 3, 3] * G33
+            dRs[rg, 0] += t * G00
+            dRs[rg, 1] += t * G01
+            dRs[rg, 2] += t * G02
+            dRs[rg, 3] += t * G03
+            dRs[rg, 4] += t * G11
+            dRs[rg, 5] += t * G12
+            dRs[rg, 6] += t * G13
+            dRs[rg, 7] += t * G22
+            dRs[rg, 8] += t * G23
+            dRs[rg, 9] += t * G33
+            dE00 += G00
+            d_err[c, 0, 0] = G00
+            dE01 += G01
+            d_err[c, 0, 1] = G01
+            d_err[c, 1, 0] = G01
+            dE02 += G02
+            d_err[c, 0, 2] = G02
+            d_err[c, 2, 0] = G02
+            dE03 += G03
+            d_err[c, 0, 3] = G03
+            d_err[c, 3, 0] = G03
+            dE11 += G11
+            d_err[c, 1, 1] = G11
+            dE12 += G12
+            d_err[c, 1, 2] = G12
+            d_err[c, 2, 1] = G12
+            dE13 += G13
+            d_err[c, 1, 3] = G13
+            d_err[c, 3, 1] = G13
+            dE22 += G22
+            d_err[c, 2, 2] = G22
+            dE23 += G23
+            d_err[c, 2, 3] = G23
+            d_err[c, 3, 2] = G23
+            dE33 += G33
+            d_err[c, 3, 3] = G33
+            d_y[c, 0] = -a0
+            d_y[c, 1] = -a1
+            d_y[c, 2] = -a2
+            d_y[c, 3] = -a3
+            if c == root:
+                d_mu[0] = a0
+                d_mu[1] = a1
+                d_mu[2] = a2
+                d_mu[3] = a3
+        if False:
+            anc_mean[c, 0] = m0 + P00 * a0 + P01 * a1 + P02 * a2 + P03 * a3
+            anc_mean[c, 1] = m1 + P01 * a0 + P11 * a1 + P12 * a2 + P13 * a3
+            anc_mean[c, 2] = m2 + P02 * a0 + P12 * a1 + P22 * a2 + P23 * a3
+            anc_mean[c, 3] = m3 + P03 * a0 + P13 * a1 + P23 * a2 + P33 * a3
+            Z0_0 = P00 * W00 + P01 * W01 + P02 * W02 + P03 * W03
+            Z0_1 = P00 * W01 + P01 * W11 + P02 * W12 + P03 * W13
+            Z0_2 = P00 * W02 + P01 * W12 + P02 * W22 + P03 * W23
+            Z0_3 = P00 * W03 + P01 * W13 + P02 * W23 + P03 * W33
+            Z1_0 = P01 * W00 + P11 * W01 + P12 * W02 + P13 * W03
+            Z1_1 = P01 * W01 + P11 * W11 + P12 * W12 + P13 * W13
+            Z1_2 = P01 * W02 + P11 * W12 + P12 * W22 + P13 * W23
+            Z1_3 = P01 * W03 + P11 * W13 + P12 * W23 + P13 * W33
+            Z2_0 = P02 * W00 + P12 * W01 + P22 * W02 + P23 * W03
+            Z2_1 = P02 * W01 + P12 * W11 + P22 * W12 + P23 * W13
+            Z2_2 = P02 * W02 + P12 * W12 + P22 * W22 + P23 * W23
+            Z2_3 = P02 * W03 + P12 * W13 + P22 * W23 + P23 * W33
+            Z3_0 = P03 * W00 + P13 * W01 + P23 * W02 + P33 * W03
+            Z3_1 = P03 * W01 + P13 * W11 + P23 * W12 + P33 * W13
+            Z3_2 = P03 * W02 + P13 * W12 + P23 * W22 + P33 * W23
+            Z3_3 = P03 * W03 + P13 * W13 + P23 * W23 + P33 * W33
+            anc_cov[c, 0, 0] = P00 - (Z0_0 * P00 + Z0_1 * P01 + Z0_2 * P02 + Z0_3 * P03)
+            anc_cov[c, 0, 1] = P01 - (Z0_0 * P01 + Z0_1 * P11 + Z0_2 * P12 + Z0_3 * P13)
+            anc_cov[c, 0, 2] = P02 - (Z0_0 * P02 + Z0_1 * P12 + Z0_2 * P22 + Z0_3 * P23)
+            anc_cov[c, 0, 3] = P03 - (Z0_0 * P03 + Z0_1 * P13 + Z0_2 * P23 + Z0_3 * P33)
+            anc_cov[c, 1, 0] = P01 - (Z1_0 * P00 + Z1_1 * P01 + Z1_2 * P02 + Z1_3 * P03)
+            anc_cov[c, 1, 1] = P11 - (Z1_0 * P01 + Z1_1 * P11 + Z1_2 * P12 + Z1_3 * P13)
+            anc_cov[c, 1, 2] = P12 - (Z1_0 * P02 + Z1_1 * P12 + Z1_2 * P22 + Z1_3 * P23)
+            anc_cov[c, 1, 3] = P13 - (Z1_0 * P03 + Z1_1 * P13 + Z1_2 * P23 + Z1_3 * P33)
+            anc_cov[c, 2, 0] = P02 - (Z2_0 * P00 + Z2_1 * P01 + Z2_2 * P02 + Z2_3 * P03)
+            anc_cov[c, 2, 1] = P12 - (Z2_0 * P01 + Z2_1 * P11 + Z2_2 * P12 + Z2_3 * P13)
+            anc_cov[c, 2, 2] = P22 - (Z2_0 * P02 + Z2_1 * P12 + Z2_2 * P22 + Z2_3 * P23)
+            anc_cov[c, 2, 3] = P23 - (Z2_0 * P03 + Z2_1 * P13 + Z2_2 * P23 + Z2_3 * P33)
+            anc_cov[c, 3, 0] = P03 - (Z3_0 * P00 + Z3_1 * P01 + Z3_2 * P02 + Z3_3 * P03)
+            anc_cov[c, 3, 1] = P13 - (Z3_0 * P01 + Z3_1 * P11 + Z3_2 * P12 + Z3_3 * P13)
+            anc_cov[c, 3, 2] = P23 - (Z3_0 * P02 + Z3_1 * P12 + Z3_2 * P22 + Z3_3 * P23)
+            anc_cov[c, 3, 3] = P33 - (Z3_0 * P03 + Z3_1 * P13 + Z3_2 * P23 + Z3_3 * P33)
+    if False:
+        for rg in range(R.shape[0]):
+            d_R[rg, 0, 0] += dRs[rg, 0]
+            d_R[rg, 0, 1] += dRs[rg, 1]
+            d_R[rg, 1, 0] += dRs[rg, 1]
+            d_R[rg, 0, 2] += dRs[rg, 2]
+            d_R[rg, 2, 0] += dRs[rg, 2]
+            d_R[rg, 0, 3] += dRs[rg, 3]
+            d_R[rg, 3, 0] += dRs[rg, 3]
+            d_R[rg, 1, 1] += dRs[rg, 4]
+            d_R[rg, 1, 2] += dRs[rg, 5]
+            d_R[rg, 2, 1] += dRs[rg, 5]
+            d_R[rg, 1, 3] += dRs[rg, 6]
+            d_R[rg, 3, 1] += dRs[rg, 6]
+            d_R[rg, 2, 2] += dRs[rg, 7]
+            d_R[rg, 2, 3] += dRs[rg, 8]
+            d_R[rg, 3, 2] += dRs[rg, 8]
+            d_R[rg, 3, 3] += dRs[rg, 9]
+        d_E[0, 0] += dE00
+        d_E[0, 1] += dE01
+        d_E[1, 0] += dE01
+        d_E[0, 2] += dE02
+        d_E[2, 0] += dE02
+        d_E[0, 3] += dE03
+        d_E[3, 0] += dE03
+        d_E[1, 1] += dE11
+        d_E[1, 2] += dE12
+        d_E[2, 1] += dE12
+        d_E[1, 3] += dE13
+        d_E[3, 1] += dE13
+        d_E[2, 2] += dE22
+        d_E[2, 3] += dE23
+        d_E[3, 2] += dE23
+        d_E[3, 3] += dE33
+
+
+@njit(**_JIT)
+def downward_anc_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq,
+               d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
+               anc_mean, anc_cov):
+    """Pass from the root to the tips after the upward pass, then the tips' terms (anc)."""
+    n = parent.shape[0]
+    ntip = y.shape[0]
+    if False:
+        d_lengths[:] = 0.0
+        d_y[:] = 0.0
+        d_R[:] = 0.0
+        d_E[:] = 0.0
+        d_err[:] = 0.0
+        d_mu[:] = 0.0
+    dRs = np.zeros((R.shape[0], 10))
+    # Cholesky factor of each regime's R: V = t F F' on a branch
+    FR = np.empty((R.shape[0], 10))
+    for rg in range(R.shape[0]):
+        fd = R[rg, 0, 0]
+        F00 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F00 if fd > 0.0 else 0.0
+        F10 = (R[rg, 1, 0]) * fr
+        F20 = (R[rg, 2, 0]) * fr
+        F30 = (R[rg, 3, 0]) * fr
+        fd = R[rg, 1, 1] - F10 * F10
+        F11 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F11 if fd > 0.0 else 0.0
+        F21 = (R[rg, 2, 1] - F20 * F10) * fr
+        F31 = (R[rg, 3, 1] - F30 * F10) * fr
+        fd = R[rg, 2, 2] - F20 * F20 - F21 * F21
+        F22 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F22 if fd > 0.0 else 0.0
+        F32 = (R[rg, 3, 2] - F30 * F20 - F31 * F21) * fr
+        fd = R[rg, 3, 3] - F30 * F30 - F31 * F31 - F32 * F32
+        F33 = math.sqrt(fd) if fd > 0.0 else 0.0
+        fr = 1.0 / F33 if fd > 0.0 else 0.0
+        FR[rg, 0] = F00
+        FR[rg, 1] = F10
+        FR[rg, 2] = F20
+        FR[rg, 3] = F30
+        FR[rg, 4] = F11
+        FR[rg, 5] = F21
+        FR[rg, 6] = F31
+        FR[rg, 7] = F22
+        FR[rg, 8] = F32
+        FR[rg, 9] = F33
+    root = n - 1
+    for c in range(root, -1, -1):
+        t = lengths[c]
+        rg = regime[c]
+        if c == root:
+            point = True
+            m0 = mu[0]
+            m1 = mu[1]
+            m2 = mu[2]
+            m3 = mu[3]
+            Q00 = 0.0
+            Q01 = 0.0
+            Q02 = 0.0
+            Q03 = 0.0
+            Q11 = 0.0
+            Q12 = 0.0
+            Q13 = 0.0
+            Q22 = 0.0
+            Q23 = 0.0
+            Q33 = 0.0
+        else:
+            if c >= PREFETCH_AHEAD:
+                prefetch_row(Pm, parent[c - PREFETCH_AHEAD] - ntip)
+            p = parent[c] - ntip
+            # the other children's messages: before c (upward pass) plus after c (running sum)
+            S00 = Sq[c, 14] + Pm[p, 0]
+            S01 = Sq[c, 15] + Pm[p, 1]
+            S02 = Sq[c, 16] + Pm[p, 2]
+            S03 = Sq[c, 17] + Pm[p, 3]
+            S11 = Sq[c, 18] + Pm[p, 4]
+            S12 = Sq[c, 19] + Pm[p, 5]
+            S13 = Sq[c, 20] + Pm[p, 6]
+            S22 = Sq[c, 21] + Pm[p, 7]
+            S23 = Sq[c, 22] + Pm[p, 8]
+            S33 = Sq[c, 23] + Pm[p, 9]
+            s0 = Sq[c, 24] + Pm[p, 10]
+            s1 = Sq[c, 25] + Pm[p, 11]
+            s2 = Sq[c, 26] + Pm[p, 12]
+            s3 = Sq[c, 27] + Pm[p, 13]
+            for i in range(14):
+                Pm[p, i] += Sq[c, i]
+            point = Pm[p, 28] != 0.0
+            if point:
+                m0 = Pm[p, 24]
+                m1 = Pm[p, 25]
+                m2 = Pm[p, 26]
+                m3 = Pm[p, 27]
+                Q00 = 0.0
+                Q01 = 0.0
+                Q02 = 0.0
+                Q03 = 0.0
+                Q11 = 0.0
+                Q12 = 0.0
+                Q13 = 0.0
+                Q22 = 0.0
+                Q23 = 0.0
+                Q33 = 0.0
+            else:
+                # condition the parent's outside on them: information adds
+                C00 = Pm[p, 14]
+                C01 = Pm[p, 15]
+                C02 = Pm[p, 16]
+                C03 = Pm[p, 17]
+                C11 = Pm[p, 18]
+                C12 = Pm[p, 19]
+                C13 = Pm[p, 20]
+                C22 = Pm[p, 21]
+                C23 = Pm[p, 22]
+                C33 = Pm[p, 23]
+                e0 = Pm[p, 24]
+                e1 = Pm[p, 25]
+                e2 = Pm[p, 26]
+                e3 = Pm[p, 27]
+                C00 += S00
+                C01 += S01
+                C02 += S02
+                C03 += S03
+                C11 += S11
+                C12 += S12
+                C13 += S13
+                C22 += S22
+                C23 += S23
+                C33 += S33
+                e0 += s0
+                e1 += s1
+                e2 += s2
+                e3 += s3
+        if c < ntip:
+            # a tip's outside moment form
+            if not point:
+                xD0 = C00
+                xr0 = 1.0 / xD0
+                xL10 = (C01) * xr0
+                xL20 = (C02) * xr0
+                xL30 = (C03) * xr0
+                xw10 = xL10 * xD0
+                xD1 = C11 - xL10 * xw10
+                xr1 = 1.0 / xD1
+                xL21 = (C12 - xL20 * xw10) * xr1
+                xL31 = (C13 - xL30 * xw10) * xr1
+                xw20 = xL20 * xD0
+                xw21 = xL21 * xD1
+                xD2 = C22 - xL20 * xw20 - xL21 * xw21
+                xr2 = 1.0 / xD2
+                xL32 = (C23 - xL30 * xw20 - xL31 * xw21) * xr2
+                xw30 = xL30 * xD0
+                xw31 = xL31 * xD1
+                xw32 = xL32 * xD2
+                xD3 = C33 - xL30 * xw30 - xL31 * xw31 - xL32 * xw32
+                xr3 = 1.0 / xD3
+                xM10 = -(xL10)
+                xM20 = -(xL20 + xL21 * xM10)
+                xM30 = -(xL30 + xL31 * xM10 + xL32 * xM20)
+                xM21 = -(xL21)
+                xM31 = -(xL31 + xL32 * xM21)
+                xM32 = -(xL32)
+                Q00 = xr0 + xr1 * xM10 * xM10 + xr2 * xM20 * xM20 + xr3 * xM30 * xM30
+                Q01 = xr1 * xM10 + xr2 * xM20 * xM21 + xr3 * xM30 * xM31
+                Q02 = xr2 * xM20 + xr3 * xM30 * xM32
+                Q03 = xr3 * xM30
+                Q11 = xr1 + xr2 * xM21 * xM21 + xr3 * xM31 * xM31
+                Q12 = xr2 * xM21 + xr3 * xM31 * xM32
+                Q13 = xr3 * xM31
+                Q22 = xr2 + xr3 * xM32 * xM32
+                Q23 = xr3 * xM32
+                Q33 = xr3
+                m0 = Q00 * e0 + Q01 * e1 + Q02 * e2 + Q03 * e3
+                m1 = Q01 * e0 + Q11 * e1 + Q12 * e2 + Q13 * e3
+                m2 = Q02 * e0 + Q12 * e1 + Q22 * e2 + Q23 * e3
+                m3 = Q03 * e0 + Q13 * e1 + Q23 * e2 + Q33 * e3
+            Q00 += t * R[rg, 0, 0]
+            Q01 += t * R[rg, 1, 0]
+            Q02 += t * R[rg, 2, 0]
+            Q03 += t * R[rg, 3, 0]
+            Q11 += t * R[rg, 1, 1]
+            Q12 += t * R[rg, 2, 1]
+            Q13 += t * R[rg, 3, 1]
+            Q22 += t * R[rg, 2, 2]
+            Q23 += t * R[rg, 3, 2]
+            Q33 += t * R[rg, 3, 3]
+            Sq[c, 0] = Q00
+            Sq[c, 1] = Q01
+            Sq[c, 2] = Q02
+            Sq[c, 3] = Q03
+            Sq[c, 4] = Q11
+            Sq[c, 5] = Q12
+            Sq[c, 6] = Q13
+            Sq[c, 7] = Q22
+            Sq[c, 8] = Q23
+            Sq[c, 9] = Q33
+            Sq[c, 10] = m0
+            Sq[c, 11] = m1
+            Sq[c, 12] = m2
+            Sq[c, 13] = m3
+            continue
+        w = c - ntip
+        J00 = Pm[w, 0]
+        J01 = Pm[w, 1]
+        J02 = Pm[w, 2]
+        J03 = Pm[w, 3]
+        J11 = Pm[w, 4]
+        J12 = Pm[w, 5]
+        J13 = Pm[w, 6]
+        J22 = Pm[w, 7]
+        J23 = Pm[w, 8]
+        J33 = Pm[w, 9]
+        h0 = Pm[w, 10]
+        h1 = Pm[w, 11]
+        h2 = Pm[w, 12]
+        h3 = Pm[w, 13]
+        if point and t == 0.0:
+            Pm[w, 28] = 1.0
+            Pm[w, 24] = m0
+            Pm[w, 25] = m1
+            Pm[w, 26] = m2
+            Pm[w, 27] = m3
+            if True:
+                # absorbing into a point mass: H = J, g = h - J m
+                H00 = J00
+                H01 = J01
+                H02 = J02
+                H03 = J03
+                H11 = J11
+                H12 = J12
+                H13 = J13
+                H22 = J22
+                H23 = J23
+                H33 = J33
+                g0 = h0 - (J00 * m0 + J01 * m1 + J02 * m2 + J03 * m3)
+                g1 = h1 - (J01 * m0 + J11 * m1 + J12 * m2 + J13 * m3)
+                g2 = h2 - (J02 * m0 + J12 * m1 + J22 * m2 + J23 * m3)
+                g3 = h3 - (J03 * m0 + J13 * m1 + J23 * m2 + J33 * m3)
+                if False:
+                    G00 = 0.5 * (g0 * g0 - H00)
+                    G01 = 0.5 * (g0 * g1 - H01)
+                    G02 = 0.5 * (g0 * g2 - H02)
+                    G03 = 0.5 * (g0 * g3 - H03)
+                    G11 = 0.5 * (g1 * g1 - H11)
+                    G12 = 0.5 * (g1 * g2 - H12)
+                    G13 = 0.5 * (g1 * g3 - H13)
+                    G22 = 0.5 * (g2 * g2 - H22)
+                    G23 = 0.5 * (g2 * g3 - H23)
+                    G33 = 0.5 * (g3 * g3 - H33)
+                    d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + (R[rg, 0, 3] + R[rg, 3, 0]) * G03 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + (R[rg, 1, 3] + R[rg, 3, 1]) * G13 + R[rg, 2, 2] * G22 + (R[rg, 2, 3] + R[rg, 3, 2]) * G23 + R[rg, 3, 3] * G33
+                    dRs[rg, 0] += t * G00
+                    dRs[rg, 1] += t * G01
+                    dRs[rg, 2] += t * G02
+                    dRs[rg, 3] += t * G03
+                    dRs[rg, 4] += t * G11
+                    dRs[rg, 5] += t * G12
+                    dRs[rg, 6] += t * G13
+                    dRs[rg, 7] += t * G22
+                    dRs[rg, 8] += t * G23
+                    dRs[rg, 9] += t * G33
+                    if c == root:
+                        d_mu[0] = g0
+                        d_mu[1] = g1
+                        d_mu[2] = g2
+                        d_mu[3] = g3
+                if True:
+                    anc_mean[c, 0] = m0
+                    anc_cov[c, 0, 0] = 0.0
+                    anc_cov[c, 0, 1] = 0.0
+                    anc_cov[c, 0, 2] = 0.0
+                    anc_cov[c, 0, 3] = 0.0
+                    anc_mean[c, 1] = m1
+                    anc_cov[c, 1, 0] = 0.0
+                    anc_cov[c, 1, 1] = 0.0
+                    anc_cov[c, 1, 2] = 0.0
+                    anc_cov[c, 1, 3] = 0.0
+                    anc_mean[c, 2] = m2
+                    anc_cov[c, 2, 0] = 0.0
+                    anc_cov[c, 2, 1] = 0.0
+                    anc_cov[c, 2, 2] = 0.0
+                    anc_cov[c, 2, 3] = 0.0
+                    anc_mean[c, 3] = m3
+                    anc_cov[c, 3, 0] = 0.0
+                    anc_cov[c, 3, 1] = 0.0
+                    anc_cov[c, 3, 2] = 0.0
+                    anc_cov[c, 3, 3] = 0.0
+        else:
+            Pm[w, 28] = 0.0
+            if point:
+                # below a point mass m: outside N(m, t R)
+                Q00 = t * R[rg, 0, 0]
+                Q01 = t * R[rg, 1, 0]
+                Q02 = t * R[rg, 2, 0]
+                Q03 = t * R[rg, 3, 0]
+                Q11 = t * R[rg, 1, 1]
+                Q12 = t * R[rg, 2, 1]
+                Q13 = t * R[rg, 3, 1]
+                Q22 = t * R[rg, 2, 2]
+                Q23 = t * R[rg, 3, 2]
+                Q33 = t * R[rg, 3, 3]
+                yD0 = Q00
+                yr0 = 1.0 / yD0
+                yL10 = (Q01) * yr0
+                yL20 = (Q02) * yr0
+                yL30 = (Q03) * yr0
+                yw10 = yL10 * yD0
+                yD1 = Q11 - yL10 * yw10
+                yr1 = 1.0 / yD1
+                yL21 = (Q12 - yL20 * yw10) * yr1
+                yL31 = (Q13 - yL30 * yw10) * yr1
+                yw20 = yL20 * yD0
+                yw21 = yL21 * yD1
+                yD2 = Q22 - yL20 * yw20 - yL21 * yw21
+                yr2 = 1.0 / yD2
+                yL32 = (Q23 - yL30 * yw20 - yL31 * yw21) * yr2
+                yw30 = yL30 * yD0
+                yw31 = yL31 * yD1
+                yw32 = yL32 * yD2
+                yD3 = Q33 - yL30 * yw30 - yL31 * yw31 - yL32 * yw32
+                yr3 = 1.0 / yD3
+                yM10 = -(yL10)
+                yM20 = -(yL20 + yL21 * yM10)
+                yM30 = -(yL30 + yL31 * yM10 + yL32 * yM20)
+                yM21 = -(yL21)
+                yM31 = -(yL31 + yL32 * yM21)
+                yM32 = -(yL32)
+                L00 = yr0 + yr1 * yM10 * yM10 + yr2 * yM20 * yM20 + yr3 * yM30 * yM30
+                L01 = yr1 * yM10 + yr2 * yM20 * yM21 + yr3 * yM30 * yM31
+                L02 = yr2 * yM20 + yr3 * yM30 * yM32
+                L03 = yr3 * yM30
+                L11 = yr1 + yr2 * yM21 * yM21 + yr3 * yM31 * yM31
+                L12 = yr2 * yM21 + yr3 * yM31 * yM32
+                L13 = yr3 * yM31
+                L22 = yr2 + yr3 * yM32 * yM32
+                L23 = yr3 * yM32
+                L33 = yr3
+                l0 = L00 * m0 + L01 * m1 + L02 * m2 + L03 * m3
+                l1 = L01 * m0 + L11 * m1 + L12 * m2 + L13 * m3
+                l2 = L02 * m0 + L12 * m1 + L22 * m2 + L23 * m3
+                l3 = L03 * m0 + L13 * m1 + L23 * m2 + L33 * m3
+            elif t == 0.0:
+                # a zero-length branch: the outside information is the conditioned parent's
+                L00 = C00
+                L01 = C01
+                L02 = C02
+                L03 = C03
+                L11 = C11
+                L12 = C12
+                L13 = C13
+                L22 = C22
+                L23 = C23
+                L33 = C33
+                l0 = e0
+                l1 = e1
+                l2 = e2
+                l3 = e3
+            else:
+                # push the conditioned parent's information across the branch (V = t F F')
+                F00 = FR[rg, 0]
+                F10 = FR[rg, 1]
+                F20 = FR[rg, 2]
+                F30 = FR[rg, 3]
+                F11 = FR[rg, 4]
+                F21 = FR[rg, 5]
+                F31 = FR[rg, 6]
+                F22 = FR[rg, 7]
+                F32 = FR[rg, 8]
+                F33 = FR[rg, 9]
+                vU0_0 = C00 * F00 + C01 * F10 + C02 * F20 + C03 * F30
+                vU0_1 = C01 * F11 + C02 * F21 + C03 * F31
+                vU0_2 = C02 * F22 + C03 * F32
+                vU0_3 = C03 * F33
+                vU1_0 = C01 * F00 + C11 * F10 + C12 * F20 + C13 * F30
+                vU1_1 = C11 * F11 + C12 * F21 + C13 * F31
+                vU1_2 = C12 * F22 + C13 * F32
+                vU1_3 = C13 * F33
+                vU2_0 = C02 * F00 + C12 * F10 + C22 * F20 + C23 * F30
+                vU2_1 = C12 * F11 + C22 * F21 + C23 * F31
+                vU2_2 = C22 * F22 + C23 * F32
+                vU2_3 = C23 * F33
+                vU3_0 = C03 * F00 + C13 * F10 + C23 * F20 + C33 * F30
+                vU3_1 = C13 * F11 + C23 * F21 + C33 * F31
+                vU3_2 = C23 * F22 + C33 * F32
+                vU3_3 = C33 * F33
+                vA00 = 1.0 + t * (F00 * vU0_0 + F10 * vU1_0 + F20 * vU2_0 + F30 * vU3_0)
+                vA01 = t * (F00 * vU0_1 + F10 * vU1_1 + F20 * vU2_1 + F30 * vU3_1)
+                vA02 = t * (F00 * vU0_2 + F10 * vU1_2 + F20 * vU2_2 + F30 * vU3_2)
+                vA03 = t * (F00 * vU0_3 + F10 * vU1_3 + F20 * vU2_3 + F30 * vU3_3)
+                vA11 = 1.0 + t * (F11 * vU1_1 + F21 * vU2_1 + F31 * vU3_1)
+                vA12 = t * (F11 * vU1_2 + F21 * vU2_2 + F31 * vU3_2)
+                vA13 = t * (F11 * vU1_3 + F21 * vU2_3 + F31 * vU3_3)
+                vA22 = 1.0 + t * (F22 * vU2_2 + F32 * vU3_2)
+                vA23 = t * (F22 * vU2_3 + F32 * vU3_3)
+                vA33 = 1.0 + t * (F33 * vU3_3)
+                vD0 = vA00
+                vr0 = 1.0 / vD0
+                vL10 = (vA01) * vr0
+                vL20 = (vA02) * vr0
+                vL30 = (vA03) * vr0
+                vw10 = vL10 * vD0
+                vD1 = vA11 - vL10 * vw10
+                vr1 = 1.0 / vD1
+                vL21 = (vA12 - vL20 * vw10) * vr1
+                vL31 = (vA13 - vL30 * vw10) * vr1
+                vw20 = vL20 * vD0
+                vw21 = vL21 * vD1
+                vD2 = vA22 - vL20 * vw20 - vL21 * vw21
+                vr2 = 1.0 / vD2
+                vL32 = (vA23 - vL30 * vw20 - vL31 * vw21) * vr2
+                vw30 = vL30 * vD0
+                vw31 = vL31 * vD1
+                vw32 = vL32 * vD2
+                vD3 = vA33 - vL30 * vw30 - vL31 * vw31 - vL32 * vw32
+                vr3 = 1.0 / vD3
+                vY0_0 = vU0_0
+                vY0_1 = vU0_1 - vY0_0 * vL10
+                vY0_2 = vU0_2 - vY0_0 * vL20 - vY0_1 * vL21
+                vY0_3 = vU0_3 - vY0_0 * vL30 - vY0_1 * vL31 - vY0_2 * vL32
+                vY1_0 = vU1_0
+                vY1_1 = vU1_1 - vY1_0 * vL10
+                vY1_2 = vU1_2 - vY1_0 * vL20 - vY1_1 * vL21
+                vY1_3 = vU1_3 - vY1_0 * vL30 - vY1_1 * vL31 - vY1_2 * vL32
+                vY2_0 = vU2_0
+                vY2_1 = vU2_1 - vY2_0 * vL10
+                vY2_2 = vU2_2 - vY2_0 * vL20 - vY2_1 * vL21
+                vY2_3 = vU2_3 - vY2_0 * vL30 - vY2_1 * vL31 - vY2_2 * vL32
+                vY3_0 = vU3_0
+                vY3_1 = vU3_1 - vY3_0 * vL10
+                vY3_2 = vU3_2 - vY3_0 * vL20 - vY3_1 * vL21
+                vY3_3 = vU3_3 - vY3_0 * vL30 - vY3_1 * vL31 - vY3_2 * vL32
+                vZ0_0 = vY0_0 * vr0
+                vZ0_1 = vY0_1 * vr1
+                vZ0_2 = vY0_2 * vr2
+                vZ0_3 = vY0_3 * vr3
+                vZ1_0 = vY1_0 * vr0
+                vZ1_1 = vY1_1 * vr1
+                vZ1_2 = vY1_2 * vr2
+                vZ1_3 = vY1_3 * vr3
+                vZ2_0 = vY2_0 * vr0
+                vZ2_1 = vY2_1 * vr1
+                vZ2_2 = vY2_2 * vr2
+                vZ2_3 = vY2_3 * vr3
+                vZ3_0 = vY3_0 * vr0
+                vZ3_1 = vY3_1 * vr1
+                vZ3_2 = vY3_2 * vr2
+                vZ3_3 = vY3_3 * vr3
+                L00 = C00 - t * (vZ0_0 * vY0_0 + vZ0_1 * vY0_1 + vZ0_2 * vY0_2 + vZ0_3 * vY0_3)
+                L01 = C01 - t * (vZ0_0 * vY1_0 + vZ0_1 * vY1_1 + vZ0_2 * vY1_2 + vZ0_3 * vY1_3)
+                L02 = C02 - t * (vZ0_0 * vY2_0 + vZ0_1 * vY2_1 + vZ0_2 * vY2_2 + vZ0_3 * vY2_3)
+                L03 = C03 - t * (vZ0_0 * vY3_0 + vZ0_1 * vY3_1 + vZ0_2 * vY3_2 + vZ0_3 * vY3_3)
+                L11 = C11 - t * (vZ1_0 * vY1_0 + vZ1_1 * vY1_1 + vZ1_2 * vY1_2 + vZ1_3 * vY1_3)
+                L12 = C12 - t * (vZ1_0 * vY2_0 + vZ1_1 * vY2_1 + vZ1_2 * vY2_2 + vZ1_3 * vY2_3)
+                L13 = C13 - t * (vZ1_0 * vY3_0 + vZ1_1 * vY3_1 + vZ1_2 * vY3_2 + vZ1_3 * vY3_3)
+                L22 = C22 - t * (vZ2_0 * vY2_0 + vZ2_1 * vY2_1 + vZ2_2 * vY2_2 + vZ2_3 * vY2_3)
+                L23 = C23 - t * (vZ2_0 * vY3_0 + vZ2_1 * vY3_1 + vZ2_2 * vY3_2 + vZ2_3 * vY3_3)
+                L33 = C33 - t * (vZ3_0 * vY3_0 + vZ3_1 * vY3_1 + vZ3_2 * vY3_2 + vZ3_3 * vY3_3)
+                vz0 = F00 * e0 + F10 * e1 + F20 * e2 + F30 * e3
+                vz1 = F11 * e1 + F21 * e2 + F31 * e3
+                vz2 = F22 * e2 + F32 * e3
+                vz3 = F33 * e3
+                vx0 = vz0
+                vx1 = vz1 - vL10 * vx0
+                vx2 = vz2 - vL20 * vx0 - vL21 * vx1
+                vx3 = vz3 - vL30 * vx0 - vL31 * vx1 - vL32 * vx2
+                l0 = e0 - t * (vZ0_0 * vx0 + vZ0_1 * vx1 + vZ0_2 * vx2 + vZ0_3 * vx3)
+                l1 = e1 - t * (vZ1_0 * vx0 + vZ1_1 * vx1 + vZ1_2 * vx2 + vZ1_3 * vx3)
+                l2 = e2 - t * (vZ2_0 * vx0 + vZ2_1 * vx1 + vZ2_2 * vx2 + vZ2_3 * vx3)
+                l3 = e3 - t * (vZ3_0 * vx0 + vZ3_1 * vx1 + vZ3_2 * vx2 + vZ3_3 * vx3)
+            Pm[w, 14] = L00
+            Pm[w, 15] = L01
+            Pm[w, 16] = L02
+            Pm[w, 17] = L03
+            Pm[w, 18] = L11
+            Pm[w, 19] = L12
+            Pm[w, 20] = L13
+            Pm[w, 21] = L22
+            Pm[w, 22] = L23
+            Pm[w, 23] = L33
+            Pm[w, 24] = l0
+            Pm[w, 25] = l1
+            Pm[w, 26] = l2
+            Pm[w, 27] = l3
+            if True:
+                aA00 = L00 + J00
+                aA01 = L01 + J01
+                aA02 = L02 + J02
+                aA03 = L03 + J03
+                aA11 = L11 + J11
+                aA12 = L12 + J12
+                aA13 = L13 + J13
+                aA22 = L22 + J22
+                aA23 = L23 + J23
+                aA33 = L33 + J33
+                aD0 = aA00
+                ar0 = 1.0 / aD0
+                aL10 = (aA01) * ar0
+                aL20 = (aA02) * ar0
+                aL30 = (aA03) * ar0
+                aw10 = aL10 * aD0
+                aD1 = aA11 - aL10 * aw10
+                ar1 = 1.0 / aD1
+                aL21 = (aA12 - aL20 * aw10) * ar1
+                aL31 = (aA13 - aL30 * aw10) * ar1
+                aw20 = aL20 * aD0
+                aw21 = aL21 * aD1
+                aD2 = aA22 - aL20 * aw20 - aL21 * aw21
+                ar2 = 1.0 / aD2
+                aL32 = (aA23 - aL30 * aw20 - aL31 * aw21) * ar2
+                aw30 = aL30 * aD0
+                aw31 = aL31 * aD1
+                aw32 = aL32 * aD2
+                aD3 = aA33 - aL30 * aw30 - aL31 * aw31 - aL32 * aw32
+                ar3 = 1.0 / aD3
+                aY0_0 = J00
+                aY0_1 = J01 - aY0_0 * aL10
+                aY0_2 = J02 - aY0_0 * aL20 - aY0_1 * aL21
+                aY0_3 = J03 - aY0_0 * aL30 - aY0_1 * aL31 - aY0_2 * aL32
+                aY1_0 = J01
+                aY1_1 = J11 - aY1_0 * aL10
+                aY1_2 = J12 - aY1_0 * aL20 - aY1_1 * aL21
+                aY1_3 = J13 - aY1_0 * aL30 - aY1_1 * aL31 - aY1_2 * aL32
+                aY2_0 = J02
+                aY2_1 = J12 - aY2_0 * aL10
+                aY2_2 = J22 - aY2_0 * aL20 - aY2_1 * aL21
+                aY2_3 = J23 - aY2_0 * aL30 - aY2_1 * aL31 - aY2_2 * aL32
+                aY3_0 = J03
+                aY3_1 = J13 - aY3_0 * aL10
+                aY3_2 = J23 - aY3_0 * aL20 - aY3_1 * aL21
+                aY3_3 = J33 - aY3_0 * aL30 - aY3_1 * aL31 - aY3_2 * aL32
+                aZ0_0 = aY0_0 * ar0
+                aZ0_1 = aY0_1 * ar1
+                aZ0_2 = aY0_2 * ar2
+                aZ0_3 = aY0_3 * ar3
+                aZ1_0 = aY1_0 * ar0
+                aZ1_1 = aY1_1 * ar1
+                aZ1_2 = aY1_2 * ar2
+                aZ1_3 = aY1_3 * ar3
+                aZ2_0 = aY2_0 * ar0
+                aZ2_1 = aY2_1 * ar1
+                aZ2_2 = aY2_2 * ar2
+                aZ2_3 = aY2_3 * ar3
+                aZ3_0 = aY3_0 * ar0
+                aZ3_1 = aY3_1 * ar1
+                aZ3_2 = aY3_2 * ar2
+                aZ3_3 = aY3_3 * ar3
+                H00 = J00 - (aZ0_0 * aY0_0 + aZ0_1 * aY0_1 + aZ0_2 * aY0_2 + aZ0_3 * aY0_3)
+                H01 = J01 - (aZ0_0 * aY1_0 + aZ0_1 * aY1_1 + aZ0_2 * aY1_2 + aZ0_3 * aY1_3)
+                H02 = J02 - (aZ0_0 * aY2_0 + aZ0_1 * aY2_1 + aZ0_2 * aY2_2 + aZ0_3 * aY2_3)
+                H03 = J03 - (aZ0_0 * aY3_0 + aZ0_1 * aY3_1 + aZ0_2 * aY3_2 + aZ0_3 * aY3_3)
+                H11 = J11 - (aZ1_0 * aY1_0 + aZ1_1 * aY1_1 + aZ1_2 * aY1_2 + aZ1_3 * aY1_3)
+                H12 = J12 - (aZ1_0 * aY2_0 + aZ1_1 * aY2_1 + aZ1_2 * aY2_2 + aZ1_3 * aY2_3)
+                H13 = J13 - (aZ1_0 * aY3_0 + aZ1_1 * aY3_1 + aZ1_2 * aY3_2 + aZ1_3 * aY3_3)
+                H22 = J22 - (aZ2_0 * aY2_0 + aZ2_1 * aY2_1 + aZ2_2 * aY2_2 + aZ2_3 * aY2_3)
+                H23 = J23 - (aZ2_0 * aY3_0 + aZ2_1 * aY3_1 + aZ2_2 * aY3_2 + aZ2_3 * aY3_3)
+                H33 = J33 - (aZ3_0 * aY3_0 + aZ3_1 * aY3_1 + aZ3_2 * aY3_2 + aZ3_3 * aY3_3)
+                ax0 = h0 + l0
+                ax1 = h1 + l1 - aL10 * ax0
+                ax2 = h2 + l2 - aL20 * ax0 - aL21 * ax1
+                ax3 = h3 + l3 - aL30 * ax0 - aL31 * ax1 - aL32 * ax2
+                ax0 *= ar0
+                ax1 *= ar1
+                ax2 *= ar2
+                ax3 *= ar3
+                ax3 = ax3
+                ax2 = ax2 - aL32 * ax3
+                ax1 = ax1 - aL21 * ax2 - aL31 * ax3
+                ax0 = ax0 - aL10 * ax1 - aL20 * ax2 - aL30 * ax3
+                g0 = L00 * ax0 + L01 * ax1 + L02 * ax2 + L03 * ax3 - l0
+                g1 = L01 * ax0 + L11 * ax1 + L12 * ax2 + L13 * ax3 - l1
+                g2 = L02 * ax0 + L12 * ax1 + L22 * ax2 + L23 * ax3 - l2
+                g3 = L03 * ax0 + L13 * ax1 + L23 * ax2 + L33 * ax3 - l3
+                if False:
+                    G00 = 0.5 * (g0 * g0 - H00)
+                    G01 = 0.5 * (g0 * g1 - H01)
+                    G02 = 0.5 * (g0 * g2 - H02)
+                    G03 = 0.5 * (g0 * g3 - H03)
+                    G11 = 0.5 * (g1 * g1 - H11)
+                    G12 = 0.5 * (g1 * g2 - H12)
+                    G13 = 0.5 * (g1 * g3 - H13)
+                    G22 = 0.5 * (g2 * g2 - H22)
+                    G23 = 0.5 * (g2 * g3 - H23)
+                    G33 = 0.5 * (g3 * g3 - H33)
+                    d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + (R[rg, 0, 3] + R[rg, 3, 0]) * G03 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + (R[rg, 1, 3] + R[rg, 3, 1]) * G13 + R[rg, 2, 2] * G22 + (R[rg, 2, 3] + R[rg, 3, 2]) * G23 + R[rg, 3, 3] * G33
+                    dRs[rg, 0] += t * G00
+                    dRs[rg, 1] += t * G01
+                    dRs[rg, 2] += t * G02
+                    dRs[rg, 3] += t * G03
+                    dRs[rg, 4] += t * G11
+                    dRs[rg, 5] += t * G12
+                    dRs[rg, 6] += t * G13
+                    dRs[rg, 7] += t * G22
+                    dRs[rg, 8] += t * G23
+                    dRs[rg, 9] += t * G33
+                    if c == root:
+                        d_mu[0] = g0
+                        d_mu[1] = g1
+                        d_mu[2] = g2
+                        d_mu[3] = g3
+                if True:
+                    # posterior N((L + J)^-1 (l + h), (L + J)^-1)
+                    aA00 = L00 + J00
+                    aA01 = L01 + J01
+                    aA02 = L02 + J02
+                    aA03 = L03 + J03
+                    aA11 = L11 + J11
+                    aA12 = L12 + J12
+                    aA13 = L13 + J13
+                    aA22 = L22 + J22
+                    aA23 = L23 + J23
+                    aA33 = L33 + J33
+                    zD0 = aA00
+                    zr0 = 1.0 / zD0
+                    zL10 = (aA01) * zr0
+                    zL20 = (aA02) * zr0
+                    zL30 = (aA03) * zr0
+                    zw10 = zL10 * zD0
+                    zD1 = aA11 - zL10 * zw10
+                    zr1 = 1.0 / zD1
+                    zL21 = (aA12 - zL20 * zw10) * zr1
+                    zL31 = (aA13 - zL30 * zw10) * zr1
+                    zw20 = zL20 * zD0
+                    zw21 = zL21 * zD1
+                    zD2 = aA22 - zL20 * zw20 - zL21 * zw21
+                    zr2 = 1.0 / zD2
+                    zL32 = (aA23 - zL30 * zw20 - zL31 * zw21) * zr2
+                    zw30 = zL30 * zD0
+                    zw31 = zL31 * zD1
+                    zw32 = zL32 * zD2
+                    zD3 = aA33 - zL30 * zw30 - zL31 * zw31 - zL32 * zw32
+                    zr3 = 1.0 / zD3
+                    zM10 = -(zL10)
+                    zM20 = -(zL20 + zL21 * zM10)
+                    zM30 = -(zL30 + zL31 * zM10 + zL32 * zM20)
+                    zM21 = -(zL21)
+                    zM31 = -(zL31 + zL32 * zM21)
+                    zM32 = -(zL32)
+                    Z00 = zr0 + zr1 * zM10 * zM10 + zr2 * zM20 * zM20 + zr3 * zM30 * zM30
+                    Z01 = zr1 * zM10 + zr2 * zM20 * zM21 + zr3 * zM30 * zM31
+                    Z02 = zr2 * zM20 + zr3 * zM30 * zM32
+                    Z03 = zr3 * zM30
+                    Z11 = zr1 + zr2 * zM21 * zM21 + zr3 * zM31 * zM31
+                    Z12 = zr2 * zM21 + zr3 * zM31 * zM32
+                    Z13 = zr3 * zM31
+                    Z22 = zr2 + zr3 * zM32 * zM32
+                    Z23 = zr3 * zM32
+                    Z33 = zr3
+                    u0 = l0 + h0
+                    u1 = l1 + h1
+                    u2 = l2 + h2
+                    u3 = l3 + h3
+                    anc_mean[c, 0] = Z00 * u0 + Z01 * u1 + Z02 * u2 + Z03 * u3
+                    anc_cov[c, 0, 0] = Z00
+                    anc_cov[c, 0, 1] = Z01
+                    anc_cov[c, 0, 2] = Z02
+                    anc_cov[c, 0, 3] = Z03
+                    anc_mean[c, 1] = Z01 * u0 + Z11 * u1 + Z12 * u2 + Z13 * u3
+                    anc_cov[c, 1, 0] = Z01
+                    anc_cov[c, 1, 1] = Z11
+                    anc_cov[c, 1, 2] = Z12
+                    anc_cov[c, 1, 3] = Z13
+                    anc_mean[c, 2] = Z02 * u0 + Z12 * u1 + Z22 * u2 + Z23 * u3
+                    anc_cov[c, 2, 0] = Z02
+                    anc_cov[c, 2, 1] = Z12
+                    anc_cov[c, 2, 2] = Z22
+                    anc_cov[c, 2, 3] = Z23
+                    anc_mean[c, 3] = Z03 * u0 + Z13 * u1 + Z23 * u2 + Z33 * u3
+                    anc_cov[c, 3, 0] = Z03
+                    anc_cov[c, 3, 1] = Z13
+                    anc_cov[c, 3, 2] = Z23
+                    anc_cov[c, 3, 3] = Z33
+        for i in range(14):
+            Pm[w, i] = 0.0
+    dE00 = 0.0
+    dE01 = 0.0
+    dE02 = 0.0
+    dE03 = 0.0
+    dE11 = 0.0
+    dE12 = 0.0
+    dE13 = 0.0
+    dE22 = 0.0
+    dE23 = 0.0
+    dE33 = 0.0
+    E00 = E[0, 0]
+    E01 = E[1, 0]
+    E02 = E[2, 0]
+    E03 = E[3, 0]
+    E11 = E[1, 1]
+    E12 = E[2, 1]
+    E13 = E[3, 1]
+    E22 = E[2, 2]
+    E23 = E[3, 2]
+    E33 = E[3, 3]
+    for c in range(ntip):
+        t = lengths[c]
+        rg = regime[c]
+        P00 = Sq[c, 0]
+        P01 = Sq[c, 1]
+        P02 = Sq[c, 2]
+        P03 = Sq[c, 3]
+        P11 = Sq[c, 4]
+        P12 = Sq[c, 5]
+        P13 = Sq[c, 6]
+        P22 = Sq[c, 7]
+        P23 = Sq[c, 8]
+        P33 = Sq[c, 9]
+        m0 = Sq[c, 10]
+        m1 = Sq[c, 11]
+        m2 = Sq[c, 12]
+        m3 = Sq[c, 13]
+        X00 = err[c, 0, 0]
+        X01 = 0.5 * (err[c, 0, 1] + err[c, 1, 0])
+        X02 = 0.5 * (err[c, 0, 2] + err[c, 2, 0])
+        X03 = 0.5 * (err[c, 0, 3] + err[c, 3, 0])
+        X11 = err[c, 1, 1]
+        X12 = 0.5 * (err[c, 1, 2] + err[c, 2, 1])
+        X13 = 0.5 * (err[c, 1, 3] + err[c, 3, 1])
+        X22 = err[c, 2, 2]
+        X23 = 0.5 * (err[c, 2, 3] + err[c, 3, 2])
+        X33 = err[c, 3, 3]
+        if False:
+            loo_mean[c, 0] = m0
+            loo_mean[c, 1] = m1
+            loo_mean[c, 2] = m2
+            loo_mean[c, 3] = m3
+            loo_cov[c, 0, 0] = P00 + E[0, 0] + X00
+            loo_cov[c, 0, 1] = P01 + E[0, 1] + X01
+            loo_cov[c, 0, 2] = P02 + E[0, 2] + X02
+            loo_cov[c, 0, 3] = P03 + E[0, 3] + X03
+            loo_cov[c, 1, 0] = P01 + E[1, 0] + X01
+            loo_cov[c, 1, 1] = P11 + E[1, 1] + X11
+            loo_cov[c, 1, 2] = P12 + E[1, 2] + X12
+            loo_cov[c, 1, 3] = P13 + E[1, 3] + X13
+            loo_cov[c, 2, 0] = P02 + E[2, 0] + X02
+            loo_cov[c, 2, 1] = P12 + E[2, 1] + X12
+            loo_cov[c, 2, 2] = P22 + E[2, 2] + X22
+            loo_cov[c, 2, 3] = P23 + E[2, 3] + X23
+            loo_cov[c, 3, 0] = P03 + E[3, 0] + X03
+            loo_cov[c, 3, 1] = P13 + E[3, 1] + X13
+            loo_cov[c, 3, 2] = P23 + E[3, 2] + X23
+            loo_cov[c, 3, 3] = P33 + E[3, 3] + X33
+        o0 = observed[c, 0]
+        o1 = observed[c, 1]
+        o2 = observed[c, 2]
+        o3 = observed[c, 3]
+        q = (1 if o0 else 0) + (1 if o1 else 0) + (1 if o2 else 0) + (1 if o3 else 0)
+        if q == 0:
+            if False:
+                loo_logdens[c] = 0.0
+            if False:
+                d_lengths[c] = 0.0
+            if True:
+                anc_mean[c, 0] = m0
+                anc_mean[c, 1] = m1
+                anc_mean[c, 2] = m2
+                anc_mean[c, 3] = m3
+                anc_cov[c, 0, 0] = P00
+                anc_cov[c, 0, 1] = P01
+                anc_cov[c, 0, 2] = P02
+                anc_cov[c, 0, 3] = P03
+                anc_cov[c, 1, 0] = P01
+                anc_cov[c, 1, 1] = P11
+                anc_cov[c, 1, 2] = P12
+                anc_cov[c, 1, 3] = P13
+                anc_cov[c, 2, 0] = P02
+                anc_cov[c, 2, 1] = P12
+                anc_cov[c, 2, 2] = P22
+                anc_cov[c, 2, 3] = P23
+                anc_cov[c, 3, 0] = P03
+                anc_cov[c, 3, 1] = P13
+                anc_cov[c, 3, 2] = P23
+                anc_cov[c, 3, 3] = P33
+            continue
+        K00 = (P00 + E00 + X00) if o0 else 1.0
+        K01 = (P01 + E01 + X01) if o0 and o1 else 0.0
+        K02 = (P02 + E02 + X02) if o0 and o2 else 0.0
+        K03 = (P03 + E03 + X03) if o0 and o3 else 0.0
+        K11 = (P11 + E11 + X11) if o1 else 1.0
+        K12 = (P12 + E12 + X12) if o1 and o2 else 0.0
+        K13 = (P13 + E13 + X13) if o1 and o3 else 0.0
+        K22 = (P22 + E22 + X22) if o2 else 1.0
+        K23 = (P23 + E23 + X23) if o2 and o3 else 0.0
+        K33 = (P33 + E33 + X33) if o3 else 1.0
+        xD0 = K00
+        xr0 = 1.0 / xD0
+        xL10 = (K01) * xr0
+        xL20 = (K02) * xr0
+        xL30 = (K03) * xr0
+        xw10 = xL10 * xD0
+        xD1 = K11 - xL10 * xw10
+        xr1 = 1.0 / xD1
+        xL21 = (K12 - xL20 * xw10) * xr1
+        xL31 = (K13 - xL30 * xw10) * xr1
+        xw20 = xL20 * xD0
+        xw21 = xL21 * xD1
+        xD2 = K22 - xL20 * xw20 - xL21 * xw21
+        xr2 = 1.0 / xD2
+        xL32 = (K23 - xL30 * xw20 - xL31 * xw21) * xr2
+        xw30 = xL30 * xD0
+        xw31 = xL31 * xD1
+        xw32 = xL32 * xD2
+        xD3 = K33 - xL30 * xw30 - xL31 * xw31 - xL32 * xw32
+        xr3 = 1.0 / xD3
+        xM10 = -(xL10)
+        xM20 = -(xL20 + xL21 * xM10)
+        xM30 = -(xL30 + xL31 * xM10 + xL32 * xM20)
+        xM21 = -(xL21)
+        xM31 = -(xL31 + xL32 * xM21)
+        xM32 = -(xL32)
+        W00 = xr0 + xr1 * xM10 * xM10 + xr2 * xM20 * xM20 + xr3 * xM30 * xM30
+        W01 = xr1 * xM10 + xr2 * xM20 * xM21 + xr3 * xM30 * xM31
+        W02 = xr2 * xM20 + xr3 * xM30 * xM32
+        W03 = xr3 * xM30
+        W11 = xr1 + xr2 * xM21 * xM21 + xr3 * xM31 * xM31
+        W12 = xr2 * xM21 + xr3 * xM31 * xM32
+        W13 = xr3 * xM31
+        W22 = xr2 + xr3 * xM32 * xM32
+        W23 = xr3 * xM32
+        W33 = xr3
+        W00 = W00 if o0 else 0.0
+        W01 = W01 if o0 and o1 else 0.0
+        W02 = W02 if o0 and o2 else 0.0
+        W03 = W03 if o0 and o3 else 0.0
+        W11 = W11 if o1 else 0.0
+        W12 = W12 if o1 and o2 else 0.0
+        W13 = W13 if o1 and o3 else 0.0
+        W22 = W22 if o2 else 0.0
+        W23 = W23 if o2 and o3 else 0.0
+        W33 = W33 if o3 else 0.0
+        r0 = (y[c, 0] - m0) if o0 else 0.0
+        r1 = (y[c, 1] - m1) if o1 else 0.0
+        r2 = (y[c, 2] - m2) if o2 else 0.0
+        r3 = (y[c, 3] - m3) if o3 else 0.0
+        a0 = W00 * r0 + W01 * r1 + W02 * r2 + W03 * r3
+        a1 = W01 * r0 + W11 * r1 + W12 * r2 + W13 * r3
+        a2 = W02 * r0 + W12 * r1 + W22 * r2 + W23 * r3
+        a3 = W03 * r0 + W13 * r1 + W23 * r2 + W33 * r3
+        if False:
+            if xD0 > 0.0 and xD1 > 0.0 and xD2 > 0.0 and xD3 > 0.0:
+                pd = xD0 * xD1 * xD2 * xD3
+                if pd > 1e-280 and pd < 1e280:
+                    ld = math.log(pd)
+                else:
+                    ld = math.log(xD0) + math.log(xD1) + math.log(xD2) + math.log(xD3)
+            else:
+                ld = np.nan
+            loo_logdens[c] = -0.5 * (a0 * r0 + a1 * r1 + a2 * r2 + a3 * r3) - 0.5 * ld - 0.5 * q * LOG_2PI
+        if False:
+            G00 = 0.5 * (a0 * a0 - W00)
+            G01 = 0.5 * (a0 * a1 - W01)
+            G02 = 0.5 * (a0 * a2 - W02)
+            G03 = 0.5 * (a0 * a3 - W03)
+            G11 = 0.5 * (a1 * a1 - W11)
+            G12 = 0.5 * (a1 * a2 - W12)
+            G13 = 0.5 * (a1 * a3 - W13)
+            G22 = 0.5 * (a2 * a2 - W22)
+            G23 = 0.5 * (a2 * a3 - W23)
+            G33 = 0.5 * (a3 * a3 - W33)
+            d_lengths[c] = R[rg, 0, 0] * G00 + (R[rg, 0, 1] + R[rg, 1, 0]) * G01 + (R[rg, 0, 2] + R[rg, 2, 0]) * G02 + (R[rg, 0, 3] + R[rg, 3, 0]) * G03 + R[rg, 1, 1] * G11 + (R[rg, 1, 2] + R[rg, 2, 1]) * G12 + (R[rg, 1, 3] + R[rg, 3, 1]) * G13 + R[rg, 2, 2] * G22 + (R[rg, 2, 3] + R[rg, 3, 2]) * G23 + R[rg, 3, 3] * G33
+            dRs[rg, 0] += t * G00
+            dRs[rg, 1] += t * G01
+            dRs[rg, 2] += t * G02
+            dRs[rg, 3] += t * G03
+            dRs[rg, 4] += t * G11
+            dRs[rg, 5] += t * G12
+            dRs[rg, 6] += t * G13
+            dRs[rg, 7] += t * G22
+            dRs[rg, 8] += t * G23
+            dRs[rg, 9] += t * G33
+            dE00 += G00
+            d_err[c, 0, 0] = G00
+            dE01 += G01
+            d_err[c, 0, 1] = G01
+            d_err[c, 1, 0] = G01
+            dE02 += G02
+            d_err[c, 0, 2] = G02
+            d_err[c, 2, 0] = G02
+            dE03 += G03
+            d_err[c, 0, 3] = G03
+            d_err[c, 3, 0] = G03
+            dE11 += G11
+            d_err[c, 1, 1] = G11
+            dE12 += G12
+            d_err[c, 1, 2] = G12
+            d_err[c, 2, 1] = G12
+            dE13 += G13
+            d_err[c, 1, 3] = G13
+            d_err[c, 3, 1] = G13
+            dE22 += G22
+            d_err[c, 2, 2] = G22
+            dE23 += G23
+            d_err[c, 2, 3] = G23
+            d_err[c, 3, 2] = G23
+            dE33 += G33
+            d_err[c, 3, 3] = G33
+            d_y[c, 0] = -a0
+            d_y[c, 1] = -a1
+            d_y[c, 2] = -a2
+            d_y[c, 3] = -a3
+            if c == root:
+                d_mu[0] = a0
+                d_mu[1] = a1
+                d_mu[2] = a2
+                d_mu[3] = a3
+        if True:
+            anc_mean[c, 0] = m0 + P00 * a0 + P01 * a1 + P02 * a2 + P03 * a3
+            anc_mean[c, 1] = m1 + P01 * a0 + P11 * a1 + P12 * a2 + P13 * a3
+            anc_mean[c, 2] = m2 + P02 * a0 + P12 * a1 + P22 * a2 + P23 * a3
+            anc_mean[c, 3] = m3 + P03 * a0 + P13 * a1 + P23 * a2 + P33 * a3
+            Z0_0 = P00 * W00 + P01 * W01 + P02 * W02 + P03 * W03
+            Z0_1 = P00 * W01 + P01 * W11 + P02 * W12 + P03 * W13
+            Z0_2 = P00 * W02 + P01 * W12 + P02 * W22 + P03 * W23
+            Z0_3 = P00 * W03 + P01 * W13 + P02 * W23 + P03 * W33
+            Z1_0 = P01 * W00 + P11 * W01 + P12 * W02 + P13 * W03
+            Z1_1 = P01 * W01 + P11 * W11 + P12 * W12 + P13 * W13
+            Z1_2 = P01 * W02 + P11 * W12 + P12 * W22 + P13 * W23
+            Z1_3 = P01 * W03 + P11 * W13 + P12 * W23 + P13 * W33
+            Z2_0 = P02 * W00 + P12 * W01 + P22 * W02 + P23 * W03
+            Z2_1 = P02 * W01 + P12 * W11 + P22 * W12 + P23 * W13
+            Z2_2 = P02 * W02 + P12 * W12 + P22 * W22 + P23 * W23
+            Z2_3 = P02 * W03 + P12 * W13 + P22 * W23 + P23 * W33
+            Z3_0 = P03 * W00 + P13 * W01 + P23 * W02 + P33 * W03
+            Z3_1 = P03 * W01 + P13 * W11 + P23 * W12 + P33 * W13
+            Z3_2 = P03 * W02 + P13 * W12 + P23 * W22 + P33 * W23
+            Z3_3 = P03 * W03 + P13 * W13 + P23 * W23 + P33 * W33
+            anc_cov[c, 0, 0] = P00 - (Z0_0 * P00 + Z0_1 * P01 + Z0_2 * P02 + Z0_3 * P03)
+            anc_cov[c, 0, 1] = P01 - (Z0_0 * P01 + Z0_1 * P11 + Z0_2 * P12 + Z0_3 * P13)
+            anc_cov[c, 0, 2] = P02 - (Z0_0 * P02 + Z0_1 * P12 + Z0_2 * P22 + Z0_3 * P23)
+            anc_cov[c, 0, 3] = P03 - (Z0_0 * P03 + Z0_1 * P13 + Z0_2 * P23 + Z0_3 * P33)
+            anc_cov[c, 1, 0] = P01 - (Z1_0 * P00 + Z1_1 * P01 + Z1_2 * P02 + Z1_3 * P03)
+            anc_cov[c, 1, 1] = P11 - (Z1_0 * P01 + Z1_1 * P11 + Z1_2 * P12 + Z1_3 * P13)
+            anc_cov[c, 1, 2] = P12 - (Z1_0 * P02 + Z1_1 * P12 + Z1_2 * P22 + Z1_3 * P23)
+            anc_cov[c, 1, 3] = P13 - (Z1_0 * P03 + Z1_1 * P13 + Z1_2 * P23 + Z1_3 * P33)
+            anc_cov[c, 2, 0] = P02 - (Z2_0 * P00 + Z2_1 * P01 + Z2_2 * P02 + Z2_3 * P03)
+            anc_cov[c, 2, 1] = P12 - (Z2_0 * P01 + Z2_1 * P11 + Z2_2 * P12 + Z2_3 * P13)
+            anc_cov[c, 2, 2] = P22 - (Z2_0 * P02 + Z2_1 * P12 + Z2_2 * P22 + Z2_3 * P23)
+            anc_cov[c, 2, 3] = P23 - (Z2_0 * P03 + Z2_1 * P13 + Z2_2 * P23 + Z2_3 * P33)
+            anc_cov[c, 3, 0] = P03 - (Z3_0 * P00 + Z3_1 * P01 + Z3_2 * P02 + Z3_3 * P03)
+            anc_cov[c, 3, 1] = P13 - (Z3_0 * P01 + Z3_1 * P11 + Z3_2 * P12 + Z3_3 * P13)
+            anc_cov[c, 3, 2] = P23 - (Z3_0 * P02 + Z3_1 * P12 + Z3_2 * P22 + Z3_3 * P23)
+            anc_cov[c, 3, 3] = P33 - (Z3_0 * P03 + Z3_1 * P13 + Z3_2 * P23 + Z3_3 * P33)
+    if False:
         for rg in range(R.shape[0]):
             d_R[rg, 0, 0] += dRs[rg, 0]
             d_R[rg, 0, 1] += dRs[rg, 1]
@@ -1369,17 +3314,9 @@ def downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mod
 
 
 @njit(**_JIT)
-def _run(parent, lengths, y, observed, R, regime, E, err, mu, mode, d_lengths, d_y, d_R,
-         d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens, anc_mean, anc_cov):
+def _workspace(parent, y):
     n = parent.shape[0]
-    Pm = np.empty((n - y.shape[0], 2 * B + 1))
-    Sq = np.empty((n, 2 * B))
-    logp = upward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
-    if np.isfinite(logp):
-        downward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, mode,
-                    d_lengths, d_y, d_R, d_E, d_err, d_mu, loo_mean, loo_cov, loo_logdens,
-                    anc_mean, anc_cov)
-    return logp
+    return np.empty((n - y.shape[0], 2 * B + 1)), np.empty((n, 2 * B))
 
 
 @njit(**_JIT)
@@ -1403,9 +3340,12 @@ def value_and_grad_k4(parent, lengths, y, observed, R, regime, E, err, mu):
     e1 = np.empty((0, K))
     e2 = np.empty((0, K, K))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_GRAD, d_lengths, d_y,
-                d_R, d_E, d_err, d_mu, e1, e2, e0, e1, e2)
-    if not np.isfinite(logp):
+    Pm, Sq = _workspace(parent, y)
+    logp = upward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    if np.isfinite(logp):
+        downward_grad_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, d_lengths,
+                          d_y, d_R, d_E, d_err, d_mu, e1, e2, e0, e1, e2)
+    else:
         d_lengths[:] = 0.0
         d_y[:] = 0.0
         d_R[:] = 0.0
@@ -1425,9 +3365,12 @@ def loo_k4(parent, lengths, y, observed, R, regime, E, err, mu):
     e1 = np.empty((0, K))
     e2 = np.empty((0, K, K))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_LOO, e0, e1,
-                np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), loo_mean, loo_cov,
-                loo_logdens, e1, e2)
+    Pm, Sq = _workspace(parent, y)
+    logp = upward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    if np.isfinite(logp):
+        downward_loo_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, e0, e1,
+                         np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), loo_mean, loo_cov,
+                         loo_logdens, e1, e2)
     return loo_mean, loo_cov, loo_logdens, logp
 
 
@@ -1440,9 +3383,12 @@ def ancestral_k4(parent, lengths, y, observed, R, regime, E, err, mu):
     e1 = np.empty((0, K))
     e2 = np.empty((0, K, K))
     e0 = np.empty(0)
-    logp = _run(parent, lengths, y, observed, R, regime, E, err, mu, MODE_ANCESTRAL, e0, e1,
-                np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), e1, e2, e0, anc_mean,
-                anc_cov)
+    Pm, Sq = _workspace(parent, y)
+    logp = upward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq)
+    if np.isfinite(logp):
+        downward_anc_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq, e0, e1,
+                         np.empty(R.shape), np.empty((K, K)), e2, np.empty(K), e1, e2, e0,
+                         anc_mean, anc_cov)
     return anc_mean, anc_cov, logp
 
 
@@ -1461,8 +3407,7 @@ def loo_logdens_draws_k4(parent, lengths, y, observed, R, regime, E, err, mu):
     ek = np.empty((K, K))
     ev = np.empty(K)
     eR = np.empty(R.shape[1:])
-    Pm = np.empty((n - ntip, 2 * B + 1))
-    Sq = np.empty((n, 2 * B))
+    Pm, Sq = _workspace(parent, y)
     for s in range(S):
         ln = lengths[s if lengths.shape[0] > 1 else 0]
         evs = err[s if err.shape[0] > 1 else 0]
@@ -1471,6 +3416,6 @@ def loo_logdens_draws_k4(parent, lengths, y, observed, R, regime, E, err, mu):
         if not np.isfinite(logp):
             out[s, :] = np.nan
             continue
-        downward_k4(parent, ln, y, observed, R[s], rgs, E[s], evs, mu[s], Pm, Sq, MODE_LOO,
-                    e0, e1, eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
+        downward_loo_k4(parent, ln, y, observed, R[s], rgs, E[s], evs, mu[s], Pm, Sq, e0, e1,
+                         eR, ek, e2, ev, loo_mean, loo_cov, out[s], e1, e2)
     return out
