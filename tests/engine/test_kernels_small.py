@@ -171,3 +171,15 @@ def test_generated_modules_are_current(k):
 
 def test_entries_and_generator_agree_on_k():
     assert entries.GENERATED_K == codegen_small.GENERATED_K
+
+
+def test_generated_kernels_reject_an_indefinite_rate_matrix():
+    # an indefinite R is no covariance: the kernels factor R (Cholesky) and return -inf
+    # rather than a number (the numpy API rejects such an R before the kernels)
+    case = _case(600, 3)
+    args = list(_regime_args(case))
+    args[4] = np.diag([1.0, 0.5, -0.3])[None].copy()
+    gen = importlib.import_module("cladewise.engine.kernels_k3")
+    assert gen.loglik_k3(*args) == -np.inf
+    logp, *grads = gen.value_and_grad_k3(*args)
+    assert logp == -np.inf and all(np.all(g == 0.0) for g in grads)

@@ -163,11 +163,17 @@ def absorb_factored(c: Code, k: int, J: str, r: str, F, p: str, H: str, g: str,
     return D
 
 
-def chol_lower(c: Code, k: int, K, out) -> None:
+def chol_lower(c: Code, k: int, K, out, fail: str | None = None) -> None:
     """Cholesky factor ``F`` (``F F' = K``) of a positive semidefinite ``K``: a pivot that
-    is not positive gives a zero column (exact for the zero matrix)."""
+    is not positive gives a zero column (exact for the zero matrix). ``fail``: a statement
+    run when a pivot is negative beyond rounding (``K`` not semidefinite)."""
     for j in range(k):
         c(f"fd = {K(j, j)}" + "".join(f" - {out(j, l)} * {out(j, l)}" for l in range(j)))
+        if fail:
+            c(f"if fd < -1e-12 * abs({K(j, j)}):")
+            c.indent()
+            c(fail)
+            c.dedent()
         c(f"{out(j, j)} = math.sqrt(fd) if fd > 0.0 else 0.0")
         c(f"fr = 1.0 / {out(j, j)} if fd > 0.0 else 0.0")
         for i in range(j + 1, k):

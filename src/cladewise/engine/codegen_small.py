@@ -84,13 +84,13 @@ def _mask_W(c: Code, k: int) -> None:
         c(f"{sym('W', a, b)} = {sym('W', a, b)} if {cond} else 0.0")
 
 
-def _chol_R(c: Code, k: int) -> None:
+def _chol_R(c: Code, k: int, fail: str | None = None) -> None:
     T = k * (k + 1) // 2
     c("# Cholesky factor of each regime's R: V = t F F' on a branch")
     c(f"FR = np.empty((R.shape[0], {T}))")
     c("for rg in range(R.shape[0]):")
     c.indent()
-    chol_lower(c, k, lambda i, j: f"R[rg, {i}, {j}]", lambda i, j: f"F{i}{j}")
+    chol_lower(c, k, lambda i, j: f"R[rg, {i}, {j}]", lambda i, j: f"F{i}{j}", fail)
     for n, (a, b) in enumerate(tri(k)):
         c(f"FR[rg, {n}] = F{b}{a}")
     c.dedent()
@@ -108,7 +108,8 @@ def _upward(c: Code, k: int) -> None:
     c("store = Sq.shape[0] > 0")
     for a, b in tri(k):
         c(f"{sym('E', a, b)} = E[{b}, {a}]")
-    _chol_R(c, k)
+    c("# a rate matrix that is not positive semidefinite has no likelihood")
+    _chol_R(c, k, fail="return -np.inf")
     c("for w in range(n - ntip):")
     c(f"    for i in range({B}):")
     c("        Pm[w, i] = 0.0")

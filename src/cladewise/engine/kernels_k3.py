@@ -37,19 +37,26 @@ def upward_k3(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
     E11 = E[1, 1]
     E12 = E[2, 1]
     E22 = E[2, 2]
+    # a rate matrix that is not positive semidefinite has no likelihood
     # Cholesky factor of each regime's R: V = t F F' on a branch
     FR = np.empty((R.shape[0], 6))
     for rg in range(R.shape[0]):
         fd = R[rg, 0, 0]
+        if fd < -1e-12 * abs(R[rg, 0, 0]):
+            return -np.inf
         F00 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F00 if fd > 0.0 else 0.0
         F10 = (R[rg, 1, 0]) * fr
         F20 = (R[rg, 2, 0]) * fr
         fd = R[rg, 1, 1] - F10 * F10
+        if fd < -1e-12 * abs(R[rg, 1, 1]):
+            return -np.inf
         F11 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F11 if fd > 0.0 else 0.0
         F21 = (R[rg, 2, 1] - F20 * F10) * fr
         fd = R[rg, 2, 2] - F20 * F20 - F21 * F21
+        if fd < -1e-12 * abs(R[rg, 2, 2]):
+            return -np.inf
         F22 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F22 if fd > 0.0 else 0.0
         FR[rg, 0] = F00

@@ -41,25 +41,34 @@ def upward_k4(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
     E22 = E[2, 2]
     E23 = E[3, 2]
     E33 = E[3, 3]
+    # a rate matrix that is not positive semidefinite has no likelihood
     # Cholesky factor of each regime's R: V = t F F' on a branch
     FR = np.empty((R.shape[0], 10))
     for rg in range(R.shape[0]):
         fd = R[rg, 0, 0]
+        if fd < -1e-12 * abs(R[rg, 0, 0]):
+            return -np.inf
         F00 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F00 if fd > 0.0 else 0.0
         F10 = (R[rg, 1, 0]) * fr
         F20 = (R[rg, 2, 0]) * fr
         F30 = (R[rg, 3, 0]) * fr
         fd = R[rg, 1, 1] - F10 * F10
+        if fd < -1e-12 * abs(R[rg, 1, 1]):
+            return -np.inf
         F11 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F11 if fd > 0.0 else 0.0
         F21 = (R[rg, 2, 1] - F20 * F10) * fr
         F31 = (R[rg, 3, 1] - F30 * F10) * fr
         fd = R[rg, 2, 2] - F20 * F20 - F21 * F21
+        if fd < -1e-12 * abs(R[rg, 2, 2]):
+            return -np.inf
         F22 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F22 if fd > 0.0 else 0.0
         F32 = (R[rg, 3, 2] - F30 * F20 - F31 * F21) * fr
         fd = R[rg, 3, 3] - F30 * F30 - F31 * F31 - F32 * F32
+        if fd < -1e-12 * abs(R[rg, 3, 3]):
+            return -np.inf
         F33 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F33 if fd > 0.0 else 0.0
         FR[rg, 0] = F00

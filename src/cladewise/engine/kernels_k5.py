@@ -46,10 +46,13 @@ def upward_k5(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
     E33 = E[3, 3]
     E34 = E[4, 3]
     E44 = E[4, 4]
+    # a rate matrix that is not positive semidefinite has no likelihood
     # Cholesky factor of each regime's R: V = t F F' on a branch
     FR = np.empty((R.shape[0], 15))
     for rg in range(R.shape[0]):
         fd = R[rg, 0, 0]
+        if fd < -1e-12 * abs(R[rg, 0, 0]):
+            return -np.inf
         F00 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F00 if fd > 0.0 else 0.0
         F10 = (R[rg, 1, 0]) * fr
@@ -57,21 +60,29 @@ def upward_k5(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
         F30 = (R[rg, 3, 0]) * fr
         F40 = (R[rg, 4, 0]) * fr
         fd = R[rg, 1, 1] - F10 * F10
+        if fd < -1e-12 * abs(R[rg, 1, 1]):
+            return -np.inf
         F11 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F11 if fd > 0.0 else 0.0
         F21 = (R[rg, 2, 1] - F20 * F10) * fr
         F31 = (R[rg, 3, 1] - F30 * F10) * fr
         F41 = (R[rg, 4, 1] - F40 * F10) * fr
         fd = R[rg, 2, 2] - F20 * F20 - F21 * F21
+        if fd < -1e-12 * abs(R[rg, 2, 2]):
+            return -np.inf
         F22 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F22 if fd > 0.0 else 0.0
         F32 = (R[rg, 3, 2] - F30 * F20 - F31 * F21) * fr
         F42 = (R[rg, 4, 2] - F40 * F20 - F41 * F21) * fr
         fd = R[rg, 3, 3] - F30 * F30 - F31 * F31 - F32 * F32
+        if fd < -1e-12 * abs(R[rg, 3, 3]):
+            return -np.inf
         F33 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F33 if fd > 0.0 else 0.0
         F43 = (R[rg, 4, 3] - F40 * F30 - F41 * F31 - F42 * F32) * fr
         fd = R[rg, 4, 4] - F40 * F40 - F41 * F41 - F42 * F42 - F43 * F43
+        if fd < -1e-12 * abs(R[rg, 4, 4]):
+            return -np.inf
         F44 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F44 if fd > 0.0 else 0.0
         FR[rg, 0] = F00

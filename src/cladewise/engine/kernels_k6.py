@@ -52,10 +52,13 @@ def upward_k6(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
     E44 = E[4, 4]
     E45 = E[5, 4]
     E55 = E[5, 5]
+    # a rate matrix that is not positive semidefinite has no likelihood
     # Cholesky factor of each regime's R: V = t F F' on a branch
     FR = np.empty((R.shape[0], 21))
     for rg in range(R.shape[0]):
         fd = R[rg, 0, 0]
+        if fd < -1e-12 * abs(R[rg, 0, 0]):
+            return -np.inf
         F00 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F00 if fd > 0.0 else 0.0
         F10 = (R[rg, 1, 0]) * fr
@@ -64,6 +67,8 @@ def upward_k6(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
         F40 = (R[rg, 4, 0]) * fr
         F50 = (R[rg, 5, 0]) * fr
         fd = R[rg, 1, 1] - F10 * F10
+        if fd < -1e-12 * abs(R[rg, 1, 1]):
+            return -np.inf
         F11 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F11 if fd > 0.0 else 0.0
         F21 = (R[rg, 2, 1] - F20 * F10) * fr
@@ -71,21 +76,29 @@ def upward_k6(parent, lengths, y, observed, R, regime, E, err, mu, Pm, Sq):
         F41 = (R[rg, 4, 1] - F40 * F10) * fr
         F51 = (R[rg, 5, 1] - F50 * F10) * fr
         fd = R[rg, 2, 2] - F20 * F20 - F21 * F21
+        if fd < -1e-12 * abs(R[rg, 2, 2]):
+            return -np.inf
         F22 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F22 if fd > 0.0 else 0.0
         F32 = (R[rg, 3, 2] - F30 * F20 - F31 * F21) * fr
         F42 = (R[rg, 4, 2] - F40 * F20 - F41 * F21) * fr
         F52 = (R[rg, 5, 2] - F50 * F20 - F51 * F21) * fr
         fd = R[rg, 3, 3] - F30 * F30 - F31 * F31 - F32 * F32
+        if fd < -1e-12 * abs(R[rg, 3, 3]):
+            return -np.inf
         F33 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F33 if fd > 0.0 else 0.0
         F43 = (R[rg, 4, 3] - F40 * F30 - F41 * F31 - F42 * F32) * fr
         F53 = (R[rg, 5, 3] - F50 * F30 - F51 * F31 - F52 * F32) * fr
         fd = R[rg, 4, 4] - F40 * F40 - F41 * F41 - F42 * F42 - F43 * F43
+        if fd < -1e-12 * abs(R[rg, 4, 4]):
+            return -np.inf
         F44 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F44 if fd > 0.0 else 0.0
         F54 = (R[rg, 5, 4] - F50 * F40 - F51 * F41 - F52 * F42 - F53 * F43) * fr
         fd = R[rg, 5, 5] - F50 * F50 - F51 * F51 - F52 * F52 - F53 * F53 - F54 * F54
+        if fd < -1e-12 * abs(R[rg, 5, 5]):
+            return -np.inf
         F55 = math.sqrt(fd) if fd > 0.0 else 0.0
         fr = 1.0 / F55 if fd > 0.0 else 0.0
         FR[rg, 0] = F00
