@@ -1,14 +1,16 @@
-"""The compact k = 3..6 kernels and the per-k entry points against the general
+"""The generated k = 3..6 kernels and the per-k entry points against the general
 kernels and the dense scipy reference.
 
 References: the dense multivariate normal of the tree model (Felsenstein 1973,
 Am. J. Hum. Genet. 25:471: Brownian motion gives a Gaussian with shared-path
 covariance) evaluated by scipy in ``cladewise.engine.dense``; finite differences of
 that dense density for the gradient; and the general O(N k^3) kernels, which the
-compact kernels must reproduce to rounding.
+generated kernels (other but equivalent k x k algebra) must reproduce to rounding.
 """
 
 from __future__ import annotations
+
+import importlib
 
 import numpy as np
 import pytest
@@ -17,8 +19,8 @@ from cladewise.engine import (
     ancestral_states,
     dense,
     entries,
+    codegen_small,
     kernels,
-    kernels_small,
     loglik,
     loglik_and_grad,
     loo_conditionals,
@@ -53,25 +55,29 @@ def _regime_args(case, n_regimes=1, seed=0):
 
 @pytest.mark.parametrize("k", FAST_K + SLOW_K)
 @pytest.mark.parametrize("n_regimes", [1, 3])
-def test_compact_equals_general_kernels(k, n_regimes):
-    case = _case(100 + k, k)
+@pytest.mark.parametrize("root_edge", [True, False])
+def test_compact_equals_general_kernels(k, n_regimes, root_edge):
+    # without a root edge the root's outside is a point mass (mu), and so are the
+    # outsides of nodes below it through zero-length branches
+    case = _case(100 + k, k, root_edge=root_edge, zero_internal=0.4)
     args = _regime_args(case, n_regimes, seed=k)
-    kt = (0,) * k
+    gen = importlib.import_module(f"cladewise.engine.kernels_k{k}")
     general = kernels.value_and_grad_regimes_kernel(*args)
-    compact = kernels_small.value_and_grad_small(*args, kt)
+    compact = getattr(gen, f"value_and_grad_k{k}")(*args)
     for a, b, name in zip(general, compact, ["logp", "lengths", "y", "R", "E", "err", "mu"]):
         np.testing.assert_allclose(b, a, rtol=1e-10, atol=1e-12, err_msg=name)
-    assert kernels_small.loglik_small(*args, kt) == pytest.approx(general[0], rel=1e-12)
-    for g, c in zip(kernels.loo_regimes_kernel(*args), kernels_small.loo_small(*args, kt)):
+    assert getattr(gen, f"loglik_k{k}")(*args) == pytest.approx(general[0], rel=1e-12)
+    for g, c in zip(kernels.loo_regimes_kernel(*args), getattr(gen, f"loo_k{k}")(*args)):
         np.testing.assert_allclose(c, g, rtol=1e-10, atol=1e-12)
-    for g, c in zip(kernels.ancestral_regimes_kernel(*args), kernels_small.ancestral_small(*args, kt)):
+    for g, c in zip(kernels.ancestral_regimes_kernel(*args), getattr(gen, f"ancestral_k{k}")(*args)):
         np.testing.assert_allclose(c, g, rtol=1e-10, atol=1e-12)
 
 
 @pytest.mark.parametrize("k", FAST_K + SLOW_K)
-def test_compact_matches_scipy_dense(k):
+@pytest.mark.parametrize("root_edge", [True, False])
+def test_compact_matches_scipy_dense(k, root_edge):
     # value, leave-one-out predictives and ancestral states against dense scipy
-    case = _case(200 + k, k)
+    case = _case(200 + k, k, root_edge=root_edge)
     assert loglik(**case) == pytest.approx(dense.loglik(**case), rel=1e-8)
     mean, cov = loo_conditionals(**case)
     dmean, dcov, _ = dense.loo_conditionals(**case)
@@ -135,7 +141,7 @@ def test_kernel_for_picks_one_path_per_k():
     assert entries.kernel_for("value_and_grad", 2)[0] is entries.value_and_grad_k2
     fn, extra = entries.kernel_for("loo", 4)
     if entries.COMPACT_SMALL_K:
-        assert fn is kernels_small.loo_small and extra == ((0, 0, 0, 0),)
+        assert fn is importlib.import_module("cladewise.engine.kernels_k4").loo_k4 and extra == ()
     else:
         assert fn is kernels.loo_regimes_kernel and extra == ()
     assert entries.kernel_for("ancestral", 7)[0] is kernels.ancestral_regimes_kernel
@@ -153,3 +159,27 @@ def test_per_k_entries_equal_general_dispatch(k):
     b = entries.kernel_for("value_and_grad", k)[0](*args)
     for x, y in zip(a, b):
         np.testing.assert_allclose(y, x, rtol=1e-13, atol=1e-14)
+
+
+@pytest.mark.parametrize("k", codegen_small.GENERATED_K)
+def test_generated_modules_are_current(k):
+    # the committed kernels_k{k}.py is exactly what the generator writes (no stale
+    # copy; numba's cache is keyed on that file)
+    assert codegen_small.module_path(k).read_text() == codegen_small.module_source(k), (
+        "run: PYTHONPATH=src python -m cladewise.engine.codegen_small")
+
+
+def test_entries_and_generator_agree_on_k():
+    assert entries.GENERATED_K == codegen_small.GENERATED_K
+
+
+def test_generated_kernels_reject_an_indefinite_rate_matrix():
+    # an indefinite R is no covariance: the kernels factor R (Cholesky) and return -inf
+    # rather than a number (the numpy API rejects such an R before the kernels)
+    case = _case(600, 3)
+    args = list(_regime_args(case))
+    args[4] = np.diag([1.0, 0.5, -0.3])[None].copy()
+    gen = importlib.import_module("cladewise.engine.kernels_k3")
+    assert gen.loglik_k3(*args) == -np.inf
+    logp, *grads = gen.value_and_grad_k3(*args)
+    assert logp == -np.inf and all(np.all(g == 0.0) for g in grads)

@@ -4,7 +4,8 @@ The ``*_kernel`` functions of :mod:`cladewise.engine.kernels` choose the k = 1,
 k = 2 or general path at run time, so numba compiles all three the first time any
 of them runs (most of a first fit's wait on a fresh install). The functions here
 each reach one path: ``*_k1`` the one-trait path, ``*_k2`` the two-trait path,
-:mod:`cladewise.engine.kernels_small` k = 3..6, and the general kernels any k.
+:mod:`cladewise.engine.kernels_k3` ... ``kernels_k6`` k = 3..6 (straight-line code written by
+:mod:`cladewise.engine.codegen_small`), and the general kernels any k.
 :func:`kernel_for` picks one by k. All take the regime signature
 (``R (n_regimes, k, k)``, ``regime`` one int per node; one regime is
 ``R[None]`` with ``regime`` zeros).
@@ -15,7 +16,9 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from cladewise.engine import kernels, kernels_small
+import importlib
+
+from cladewise.engine import kernels
 from cladewise.engine.kernels import (
     MODE_ANCESTRAL,
     MODE_GRAD,
@@ -31,7 +34,10 @@ from cladewise.engine.kernels import (
 __all__ = ["TASKS", "kernel_for", "path_name"]
 
 _JIT = {"cache": True, "nogil": True}
-#: serve k = 3..6 by the compact kernels (checked equal to the general kernels and the
+#: trait counts with generated kernels (:data:`cladewise.engine.codegen_small.GENERATED_K`;
+#: not imported from there so that running the generator as a script stays clean)
+GENERATED_K = (3, 4, 5, 6)
+#: serve k = 3..6 by the generated kernels (checked equal to the general kernels and the
 #: dense reference by tests/engine/test_kernels_small.py); False: the general kernels
 COMPACT_SMALL_K = True
 #: what an entry point computes (the names of the general ``*_regimes_kernel``)
@@ -217,17 +223,19 @@ _BY_K = {
     2: {"loglik": loglik_k2, "value_and_grad": value_and_grad_k2, "loo": loo_k2,
         "ancestral": ancestral_k2, "loo_logdens_draws": loo_logdens_draws_k2},
 }
-_SMALL = {"loglik": kernels_small.loglik_small, "value_and_grad": kernels_small.value_and_grad_small,
-          "loo": kernels_small.loo_small, "ancestral": kernels_small.ancestral_small,
-          "loo_logdens_draws": kernels_small.loo_logdens_draws_small}
+
+
+def _generated(task: str, k: int):
+    # imported on first use: each k is its own module of straight-line code
+    return getattr(importlib.import_module(f"cladewise.engine.kernels_k{k}"), f"{task}_k{k}")
 
 
 def path_name(k: int) -> str:
     """Which kernels serve ``k`` traits (for messages and benchmarks)."""
     if k in _BY_K:
         return f"k = {k} closed-form path"
-    if k in kernels_small.SMALL_K and COMPACT_SMALL_K:
-        return f"k = {k} compact path"
+    if k in GENERATED_K and COMPACT_SMALL_K:
+        return f"k = {k} generated path"
     return "general path"
 
 
@@ -235,13 +243,13 @@ def kernel_for(task: str, k: int):
     """The numba function computing ``task`` for ``k`` traits, with the regime signature.
 
     Returns ``(fn, extra)``: call ``fn(parent, lengths, y, observed, R, regime, E, err,
-    mu, *extra)``; ``extra`` is ``(kt,)`` (``k`` zeros, the compile-time trait count)
-    for the k = 3..6 kernels and ``()`` otherwise.
+    mu, *extra)``; ``extra`` is ``()`` (kept so that callers need not change if a path
+    ever takes extra arguments).
     """
     if task not in TASKS:
         raise ValueError(f"unknown task {task!r}; one of {TASKS}")
     if k in _BY_K:
         return _BY_K[k][task], ()
-    if k in kernels_small.SMALL_K and COMPACT_SMALL_K:
-        return _SMALL[task], ((0,) * k,)
+    if k in GENERATED_K and COMPACT_SMALL_K:
+        return _generated(task, k), ()
     return getattr(kernels, f"{task}_regimes_kernel"), ()

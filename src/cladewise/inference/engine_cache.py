@@ -3,7 +3,7 @@
 numba keeps each ``cache=True`` kernel's machine code in ``$NUMBA_CACHE_DIR`` when
 that is set, else in the ``__pycache__`` folder beside the engine's source (or a
 user cache folder when that one is not writable). Files are named after the module
-and function (``kernels_small.value_and_grad_small-....nbc``); the index files
+and function (``kernels_k4.value_and_grad_k4-....nbc``); the index files
 (``.nbi``) record the source file's time stamp, so an edited engine recompiles.
 """
 
@@ -15,7 +15,7 @@ from typing import Any
 
 __all__ = ["engine_cache_dirs", "engine_cache_files", "engine_cache_info", "clear_engine_cache"]
 
-_PREFIXES = ("kernels.", "kernels_small.", "entries.")
+_PREFIXES = ("kernels.", "kernels_k", "entries.")
 
 
 def engine_cache_dirs() -> list[Path]:
@@ -55,14 +55,9 @@ def engine_cache_info() -> dict[str, Any]:
 
 
 def _small_counts() -> set[int]:
-    # the k = 3..6 kernels share one index per function; its signatures name k
-    try:
-        from cladewise.engine import kernels_small
-
-        idx = kernels_small.value_and_grad_small._cache._cache_file._load_index()
-        return {len(sig[0][-1]) for sig in idx if hasattr(sig[0][-1], "count")}
-    except Exception:  # noqa: BLE001 - numba internals; the count is only informative
-        return set()
+    # the k = 3..6 kernels: one module per k, kernels_k{k}.py
+    return {int(f.name[len("kernels_k")]) for f in engine_cache_files()
+            if f.suffix == ".nbc" and f.name.startswith("kernels_k") and ".value_and_grad_k" in f.name}
 
 
 def clear_engine_cache() -> int:
@@ -94,18 +89,8 @@ def _is_compiled(fn: Any, k: int) -> bool:
         index = fn._cache._cache_file._load_index()  # {} when stale or absent
     except Exception:  # noqa: BLE001
         return True
-    if not index:
-        return False
-    try:
-        from numba.core import types
-
-        sigs = [key[0] for key in index]
-        if sigs and isinstance(sigs[0][-1], types.BaseTuple):
-            # the k = 3..6 kernels: one index for every k, keyed by the trait-count tuple
-            return any(len(sig[-1]) == k for sig in sigs)
-    except Exception:  # noqa: BLE001
-        return True
-    return True
+    # every entry point serves one k (the k = 3..6 kernels are one module per k)
+    return bool(index)
 
 
 def _tiny_inputs(task: str, k: int) -> tuple:
