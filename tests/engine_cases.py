@@ -35,7 +35,7 @@ def make_case(seed, n_tips, k, max_children=3, zero_internal=0.2, root_edge=Fals
 
 
 @st.composite
-def cases(draw, max_tips=60, max_k=4):
+def cases(draw, max_tips=60, max_k=3):  # k = 4..6: slow tests in test_kernels_small.py
     return make_case(
         seed=draw(st.integers(0, 2**32 - 1)),
         n_tips=draw(st.integers(3, max_tips)),

@@ -30,7 +30,9 @@ CASES = [
     (2, 14, 3, dict(max_children=4, zero_internal=0.4, with_E=True, p_missing=0.25)),
     (3, 8, 1, dict(root_edge=True, p_missing=0.2)),
     (4, 11, 2, dict(max_children=3, p_missing=0.0)),
-    (5, 10, 4, dict(with_E=True, root_edge=True, p_missing=0.4)),
+    # k = 4 compiles a trait-count path of its own (a minute on a fresh install): slow set;
+    # k = 3 runs the same generated-kernel code in CI
+    pytest.param(5, 10, 4, dict(with_E=True, root_edge=True, p_missing=0.4), marks=pytest.mark.slow),
 ]
 
 
