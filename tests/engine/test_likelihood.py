@@ -83,7 +83,7 @@ def _fd_grad(case, name, eps=1e-6):
         (2, 12, 3, dict(max_children=4, zero_internal=0.4, with_E=True)),
         (3, 7, 1, dict(root_edge=True, with_err=True, p_missing=0.0)),
         (4, 10, 2, dict(with_err=False, with_E=False, p_missing=0.25)),
-        (5, 8, 4, dict(with_E=True, root_edge=True, p_missing=0.4)),
+        pytest.param(5, 8, 4, dict(with_E=True, root_edge=True, p_missing=0.4), marks=pytest.mark.slow),  # own k path: slow set
     ],
 )
 def test_gradient_matches_finite_differences_of_dense(seed, n_tips, k, opts):
