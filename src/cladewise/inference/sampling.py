@@ -28,7 +28,10 @@ from cladewise.model.build import BuiltModel
 from cladewise.errors import FitInterrupted, InputError
 from cladewise.inference.diagnostics import BFMI_MIN, ESS_MIN, RHAT_MAX, Diagnostics, diagnose  # noqa: F401
 
-__all__ = ["SamplingOptions", "Diagnostics", "sample", "diagnose", "compile_model", "complete_draws"]
+__all__ = [
+    "SamplingOptions", "Diagnostics", "sample", "diagnose", "compile_model", "complete_draws",
+    "one_blas_thread",
+]
 
 @dataclass
 class SamplingOptions:
@@ -116,7 +119,7 @@ def sample(
             # the graph may not read every tree array (Brownian motion ignores heights)
             known = getattr(compiled, "shared_data", tree_values)
             compiled = compiled.with_data(**{k: v for k, v in tree_values.items() if k in known})
-        with _interrupts() as stopped:
+        with _interrupts() as stopped, one_blas_thread():
             idata = _run(lambda: nutpie.sample(
                 compiled, draws=opts.draws, tune=opts.tune, chains=opts.chains,
                 seed=opts.seed, progress_bar=progress, target_accept=opts.target_accept,
@@ -128,7 +131,7 @@ def sample(
         with built.model:
             if tree_values:
                 pm.set_data({k: v for k, v in tree_values.items() if k in built.model.named_vars})
-            with _interrupts() as stopped:
+            with _interrupts() as stopped, one_blas_thread():
                 idata = _run(lambda: pm.sample(
                     draws=opts.draws, tune=opts.tune, chains=opts.chains,
                     cores=min(opts.chains, os.cpu_count() or 1), random_seed=opts.seed,
@@ -138,6 +141,24 @@ def sample(
     if stopped:
         raise FitInterrupted(partial=complete_draws(idata))
     return idata
+
+
+@contextlib.contextmanager
+def one_blas_thread():
+    """Limit BLAS (OpenBLAS, MKL) to one thread while chains sample in parallel.
+
+    The compiled log density calls BLAS for small products. With one chain per core,
+    BLAS's own worker threads only compete with the other chains and spin while
+    waiting: on 2 cores, 4 demo chains sampled about 4x slower with OpenBLAS's
+    default thread count than with one thread (benchmarks/bench_speed.py).
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - a dependency of PyMC
+        yield
+        return
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
 
 
 def _run(call: Any) -> Any:
