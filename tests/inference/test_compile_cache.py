@@ -59,7 +59,8 @@ for i in range(4):
         "rc": int(rc), "logp": float(logp[0]), "grad": np.concatenate([grad[layout[n][0]] for n in order]).tolist(),
         "ref_logp": float(logp_ref(point)), "ref_grad": np.asarray(dlogp_ref(point)).tolist(),
     })
-print("RESULT" + json.dumps({"status": info["status"], "key": info.get("key"), "rows": rows, "said": said}))
+print("RESULT" + json.dumps({"status": info["status"], "key": info.get("key"), "quick": info.get("quick"),
+                            "rows": rows, "said": said}))
 """
 
 SPEC = {"kind": "correlated", "traits": ["a", "b"]}
@@ -99,6 +100,8 @@ def test_cold_compile_matches_pymc_and_is_stored(cold):
     entry = cache / "compiled" / result["key"]
     meta = json.loads((entry / "meta.json").read_text())
     assert set(meta["sha256"]) == {"logp", "expand"}
+    # the layout the quick path rebuilds from is recorded with the entry
+    assert len(meta["quick"]["key"]) == 64 and meta["quick"]["n_dim"] == meta["n_dim"]
 
 
 def test_new_process_other_data_and_tree_reuses_entry(cold):
@@ -106,6 +109,7 @@ def test_new_process_other_data_and_tree_reuses_entry(cold):
     result = run(cache, seed=2)  # another tree, other trait values, same structure
     assert result["status"] == "hit" and result["said"] == []
     assert result["key"] == first["key"]
+    assert result["quick"] is True  # found by its quick key: no PyTensor compile at all
     assert_matches_pymc(result)
 
 
@@ -141,10 +145,30 @@ def test_stale_entry_with_valid_checksums_is_rejected(cold, tmp_path):
     assert_matches_pymc(result)
 
 
-def _key_in_subprocess(cache: Path, spec: dict) -> str:
+@pytest.mark.slow
+def test_wrong_code_under_a_quick_key_is_rejected(cold, tmp_path):
+    # a model with the same parameters but another density (LKJ shape 4), whose quick
+    # key is planted on the first model's entry: the layout fits, the code loads, and
+    # only the comparison with PyMC can notice
+    cache, first = cold
+    other = dict(SPEC, priors={"lkj_eta": 4.0})
+    copy = tmp_path / "cache"
+    shutil.copytree(cache, copy)
+    meta_file = copy / "compiled" / first["key"] / "meta.json"
+    meta = json.loads(meta_file.read_text())
+    meta["quick"]["key"] = _key_in_subprocess(copy, other, "quick_key")
+    meta_file.write_text(json.dumps(meta))
+    result = run(copy, seed=6, spec=other)
+    assert result["status"] == "rebuilt" and result["quick"] is False
+    assert result["key"] != first["key"]
+    assert_matches_pymc(result)
+    assert not (copy / "compiled" / first["key"]).exists()
+
+
+def _key_in_subprocess(cache: Path, spec: dict, which: str = "structure_key") -> str:
     code = SCRIPT.split("info, said = ")[0] + (
-        "from cladewise.inference.compile_cache import structure_key\n"
-        "print('RESULT' + json.dumps({'key': structure_key(model)}))\n"
+        f"from cladewise.inference.compile_cache import {which}\n"
+        f"print('RESULT' + json.dumps({{'key': {which}(model)}}))\n"
     )
     env = dict(os.environ, CLADEWISE_CACHE_DIR=str(cache), PYTHONWARNINGS="ignore")
     out = subprocess.run([sys.executable, "-c", code, str(TESTS), "5", json.dumps(spec)],

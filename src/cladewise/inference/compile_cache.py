@@ -24,12 +24,19 @@ the layout of the shared data, the source of the cladewise likelihood engine, th
 versions of Python, cladewise, PyTensor, PyMC, nutpie, numba, llvmlite and numpy, and
 the CPU the code was compiled for. Any change of structure or version misses.
 
-Where the cache lives: ``$CLADEWISE_CACHE_DIR/compiled`` if that variable is set,
-else ``$XDG_CACHE_HOME/cladewise/compiled`` (``~/.cache/cladewise/compiled``;
-``%LOCALAPPDATA%\\cladewise\\compiled`` on Windows). Each entry is one folder of a
-few MB; the oldest-used entries are removed when the total exceeds
-``$CLADEWISE_CACHE_MAX_MB`` (default 500). :func:`clear_compile_cache` empties it;
-``CLADEWISE_COMPILE_CACHE=0`` turns it off.
+Where the cache lives, its size bound and clearing: :mod:`cladewise.inference.cache_store`
+(``~/.cache/cladewise/compiled`` by default; ``CLADEWISE_COMPILE_CACHE=0`` turns it off).
+
+Finding an entry fast: computing the key above means rewriting the graph and setting
+up PyTensor's numba functions, seconds for a model with specimens. So each entry also
+records a *quick key*: the SHA-256 of the unrewritten log density and stored-value
+graphs (:func:`cladewise.inference.graph_print.structure_text`: every op with its
+parameters, the wiring, every type, scalar constants by value, shared data by name),
+the shapes of the parameters and of the shared data, the PyTensor settings and the
+versions above, with the entry's layout (parameter slices, shared-data order). A
+later process first looks up its quick key; on a match it rebuilds the sampler's
+model from that layout and the stored code without compiling anything, and only
+otherwise takes the full path.
 
 Safety: each file's SHA-256 is checked before loading, and a loaded entry must
 reproduce the log density and gradient of PyMC's own (uncached) functions at two
@@ -47,19 +54,30 @@ import hashlib
 import json
 import logging
 import os
-import pickle
 import re
 import shutil
 import sys
-import tempfile
 import threading
 import time
-import uuid
-import warnings
 from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
+
+from cladewise.inference.cache_store import (
+    DEFAULT_MAX_MB,
+    FUNCS,
+    clear_compile_cache,
+    compile_cache_dir,
+    compile_cache_info,
+    find_entry,
+    prune_compile_cache,
+    read_entry,
+    sha,
+    update_meta,
+    make_cfunc,
+    write_entry,
+)
 
 __all__ = [
     "compile_cached",
@@ -68,105 +86,15 @@ __all__ = [
     "compile_cache_info",
     "prune_compile_cache",
     "structure_key",
+    "quick_key",
     "DEFAULT_MAX_MB",
 ]
 
-#: default bound on the cache's total size (MB); ``$CLADEWISE_CACHE_MAX_MB`` overrides
-DEFAULT_MAX_MB = 500
 _FORMAT = 1  # bump when the entry layout changes
-_FUNCS = ("logp", "expand")
 _LOCK = threading.Lock()
 
 
-# --------------------------------------------------------------------------- folders
-def compile_cache_dir() -> Path:
-    """The folder holding compiled models (see the module docstring)."""
-    root = os.environ.get("CLADEWISE_CACHE_DIR")
-    if root:
-        base = Path(root).expanduser()
-    elif sys.platform == "win32" and os.environ.get("LOCALAPPDATA"):
-        base = Path(os.environ["LOCALAPPDATA"]) / "cladewise"
-    else:
-        xdg = os.environ.get("XDG_CACHE_HOME")
-        base = (Path(xdg).expanduser() if xdg else Path.home() / ".cache") / "cladewise"
-    return base / "compiled"
-
-
-def _max_bytes() -> int:
-    try:
-        mb = float(os.environ.get("CLADEWISE_CACHE_MAX_MB", DEFAULT_MAX_MB))
-    except ValueError:
-        mb = DEFAULT_MAX_MB
-    return int(mb * 1024 * 1024)
-
-
-def _entries(root: Path) -> list[Path]:
-    if not root.is_dir():
-        return []
-    # names starting with "." are entries still being written by some process
-    return [p for p in root.iterdir()
-            if p.is_dir() and not p.name.startswith(".") and (p / "meta.json").exists()]
-
-
-def _size(path: Path) -> int:
-    return sum(f.stat().st_size for f in path.iterdir() if f.is_file())
-
-
-def compile_cache_info() -> dict[str, Any]:
-    """Where the cache is, how many entries it holds and their total size in bytes."""
-    root = compile_cache_dir()
-    entries = _entries(root)
-    return {
-        "path": str(root),
-        "entries": len(entries),
-        "bytes": sum(_size(e) for e in entries),
-        "max_bytes": _max_bytes(),
-    }
-
-
-def clear_compile_cache() -> int:
-    """Delete every cached compiled model; returns how many entries were removed."""
-    root = compile_cache_dir()
-    if not root.is_dir():
-        return 0
-    n = 0
-    for p in list(root.iterdir()):
-        if p.is_dir():
-            n += (p / "meta.json").exists()
-            shutil.rmtree(p, ignore_errors=True)
-        else:
-            p.unlink(missing_ok=True)
-    return n
-
-
-def prune_compile_cache(max_bytes: int | None = None, keep: str | None = None) -> int:
-    """Remove least recently used entries until the cache is at most ``max_bytes``.
-
-    ``max_bytes`` defaults to ``$CLADEWISE_CACHE_MAX_MB`` (or :data:`DEFAULT_MAX_MB`);
-    the entry named ``keep`` is never removed. Returns how many entries were removed.
-    """
-    root = compile_cache_dir()
-    limit = _max_bytes() if max_bytes is None else int(max_bytes)
-    entries = sorted(_entries(root), key=lambda e: (e / "meta.json").stat().st_mtime)
-    sizes = {e: _size(e) for e in entries}
-    total = sum(sizes.values())
-    removed = 0
-    for e in entries:
-        if total <= limit:
-            break
-        if e.name == keep:
-            continue
-        shutil.rmtree(e, ignore_errors=True)
-        total -= sizes[e]
-        removed += 1
-    return removed
-
-
 # --------------------------------------------------------------------------- keys
-def _sha(data: bytes) -> str:
-    return hashlib.sha256(data).hexdigest()
-
-
 def _versions() -> dict[str, str]:
     import llvmlite
     import numba
@@ -208,74 +136,37 @@ def _graph_key(fn: Any) -> str | None:
     printed = pytensor.printing.debugprint(fn.maker.fgraph, file="str", print_type=True)
     # names of temporaries inside fused scalar graphs vary from run to run
     printed = re.sub(r"'t\d+'", "'t'", printed)
-    return _sha(f"{pt_key}\n{printed}".encode())
-
-
-# --------------------------------------------------------------------------- numba glue
-class _EntryCache:
-    """A numba cache object for one ``CFunc``: loads from / records into memory.
-
-    ``CFunc.compile`` asks ``load_overload`` first and calls ``save_overload`` after
-    compiling; files are written by :func:`compile_cached` once both are done.
-    """
-
-    def __init__(self, payload: Any = None) -> None:
-        self.payload = payload
-        self.saved: bytes | None = None
-        self.loaded = False
-
-    def load_overload(self, sig: Any, target_context: Any) -> Any:
-        if self.payload is None:
-            return None
-        from numba.core.compiler import CompileResult
-
-        target_context.refresh()
-        try:
-            cres = CompileResult._rebuild(target_context, *self.payload)
-        except Exception:  # noqa: BLE001 - an unreadable entry is rebuilt
-            return None
-        self.loaded = True
-        return cres
-
-    def save_overload(self, sig: Any, cres: Any) -> None:
-        from numba.core.serialize import dumps
-
-        if cres.library.has_dynamic_globals or any(not x.can_cache for x in cres.lifted):
-            return
-        self.saved = dumps(cres._reduce())
-
-
-def _make_cfunc(pyfunc: Any, sig: Any, payload: Any = None) -> tuple[Any, _EntryCache]:
-    from numba.core import sigutils
-    from numba.core.ccallback import CFunc
-
-    args, ret = sigutils.normalize_signature(sig)
-    cf = CFunc(pyfunc, (args, ret), locals={}, options={})
-    cache = _EntryCache(payload)
-    cf._cache = cache
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        cf.compile()
-    return cf, cache
+    return sha(f"{pt_key}\n{printed}".encode())
 
 
 # --------------------------------------------------------------------------- checks
 
 
-def _reference(model: Any) -> Any:
-    """PyMC's own log density and gradient, interpreted (no numba, no cache)."""
+def _reference(model: Any, logp: Any = None, rewrite: bool = False) -> Any:
+    """PyMC's own log density and gradient, interpreted (no numba, no cache).
+
+    The graph is run as PyMC wrote it, op by op in Python, without PyTensor's
+    rewrites: independent of everything the compiled code went through, and quick
+    to set up. ``logp`` is ``model.logp()`` when the caller has it already.
+    """
     import pytensor
     import pytensor.tensor as pt
+    from pytensor.compile.mode import Mode
 
     # nutpie orders the flat vector by model.free_RVs; so does this gradient
     value_vars = [model.rvs_to_values[rv] for rv in model.free_RVs]
-    logp = model.logp(jacobian=True)
+    logp = model.logp(jacobian=True) if logp is None else logp
     grad = pt.concatenate([g.ravel() for g in pytensor.grad(logp, value_vars)])
-    fn = pytensor.function(value_vars, [logp, grad], mode="FAST_COMPILE", on_unused_input="ignore")
-    return fn
+    if not rewrite:
+        try:
+            return pytensor.function(value_vars, [logp, grad], on_unused_input="ignore",
+                                     mode=Mode(linker="py", optimizer=None))
+        except Exception:  # noqa: BLE001 - an op that must be rewritten first
+            pass
+    return pytensor.function(value_vars, [logp, grad], mode="FAST_COMPILE", on_unused_input="ignore")
 
 
-def _agrees(compiled: Any, model: Any, n_points: int = 2) -> bool:
+def _agrees(compiled: Any, model: Any, logp_graph: Any = None, n_points: int = 2) -> bool:
     """Do the compiled callbacks give PyMC's log density and gradient at start points?
 
     The compiled model may order its parameters differently (it is built from an
@@ -286,7 +177,7 @@ def _agrees(compiled: Any, model: Any, n_points: int = 2) -> bool:
     value_names = [model.rvs_to_values[rv].name for rv in model.free_RVs]
     if set(value_names) != {n for n, (s, _) in layout.items() if s.stop <= compiled.n_dim}:
         return False
-    ref = _reference(model)
+    ref = _reference(model, logp_graph)
     fn = compiled.compiled_logp_func.ctypes
     dptr = ctypes.POINTER(ctypes.c_double)
     compared = 0
@@ -296,7 +187,12 @@ def _agrees(compiled: Any, model: Any, n_points: int = 2) -> bool:
         logp = np.zeros(1)
         rc = fn(compiled.n_dim, x.ctypes.data_as(dptr), grad.ctypes.data_as(dptr),
                 logp.ctypes.data_as(dptr), ctypes.c_void_p(compiled.user_data.ctypes.data))
-        want, want_grad = ref(*[x[layout[n][0]].reshape(layout[n][1]) for n in value_names])
+        args = [x[layout[n][0]].reshape(layout[n][1]) for n in value_names]
+        try:
+            want, want_grad = ref(*args)
+        except Exception:  # noqa: BLE001 - an op without a Python implementation
+            ref = _reference(model, logp_graph, rewrite=True)
+            want, want_grad = ref(*args)
         want = float(want)
         if not np.isfinite(want):
             continue  # nothing to compare at this point
@@ -310,44 +206,6 @@ def _agrees(compiled: Any, model: Any, n_points: int = 2) -> bool:
             return False
         compared += 1
     return compared > 0  # no finite point to compare: do not trust the entry
-
-
-# --------------------------------------------------------------------------- entries
-
-
-def _read_entry(path: Path) -> dict[str, Any] | None:
-    """Payloads of an entry whose files match their checksums, else None."""
-    try:
-        meta = json.loads((path / "meta.json").read_text())
-        out = {}
-        for name in _FUNCS:
-            data = (path / f"{name}.nbc").read_bytes()
-            if _sha(data) != meta["sha256"][name]:
-                return None
-            out[name] = pickle.loads(data)
-        return out
-    except Exception:  # noqa: BLE001 - missing, truncated or unreadable: rebuild
-        return None
-
-
-def _write_entry(root: Path, key: str, blobs: dict[str, bytes], meta: dict[str, Any]) -> None:
-    root.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{key[:12]}-{uuid.uuid4().hex[:8]}-", dir=root))
-    try:
-        for name, data in blobs.items():
-            (tmp / f"{name}.nbc").write_bytes(data)
-        meta = dict(meta, sha256={n: _sha(b) for n, b in blobs.items()})
-        (tmp / "meta.json").write_text(json.dumps(meta, indent=1))
-        final = root / key
-        if final.exists():
-            shutil.rmtree(final, ignore_errors=True)
-        try:
-            os.replace(tmp, final)  # atomic: readers see all files or none
-        except OSError:
-            pass  # another process wrote the same entry meanwhile
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
-    prune_compile_cache(keep=key)
 
 
 # --------------------------------------------------------------------------- compile
@@ -378,7 +236,7 @@ class _SharedArrays:
         for var in ancestors(outs):
             if isinstance(var, Constant) and getattr(var.type, "ndim", 0) > 0:
                 data = np.asarray(var.data)
-                sig = (str(var.type), _sha(np.ascontiguousarray(data).tobytes()))
+                sig = (str(var.type), sha(np.ascontiguousarray(data).tobytes()))
                 if sig not in self.by_value:
                     self.by_value[sig] = pytensor.shared(
                         data.copy(), name=f"cladewise_const_{len(self.by_value)}",
@@ -396,9 +254,9 @@ class _LiftedModel:
     change; everything else (shapes, initial points, names) is the model's own.
     """
 
-    def __init__(self, model: Any) -> None:
+    def __init__(self, model: Any, lift: "_SharedArrays") -> None:
         self._model = model
-        self._lift = _SharedArrays()
+        self._lift = lift
 
     def __getattr__(self, name: str) -> Any:
         return getattr(self._model, name)
@@ -417,41 +275,140 @@ class _LiftedModel:
         return self._lift(self._model.unobserved_value_vars)
 
 
-def _prepare(model: Any) -> dict[str, Any]:
+def _prepare(model: Any, quick: dict[str, Any]) -> dict[str, Any]:
     """Everything nutpie's numba path builds before compiling its two callbacks."""
     from nutpie import compile_pymc as cp
-    from pymc.initial_point import make_initial_point_fn
 
-    pymc_ipf = cp._wrap_with_lock(make_initial_point_fn(
-        model=model, overrides=None, default_strategy="support_point",
-        jitter_rvs=set(model.free_RVs), return_transformed=True,
-    ))
+    pymc_ipf = quick["pymc_ipf"]
+    # the lifting that made the quick key names the shared arrays here too
     n_dim, n_expanded, logp_pt, expand_pt, ipf, shape_info = cp._make_functions(
-        _LiftedModel(model), mode="NUMBA", compute_grad=True, join_expanded=True,
+        _LiftedModel(model, quick["lift"]), mode="NUMBA", compute_grad=True, join_expanded=True,
         pymc_initial_point_fn=pymc_ipf, var_names=None,
     )
-    shared_data: dict[str, np.ndarray] = {}
     shared_vars: dict[str, Any] = {}
     for val in [*logp_pt.get_shared(), *expand_pt.get_shared()]:
         if val.name in shared_vars and shared_vars[val.name] is not val:
             raise ValueError(f"Shared variables must have unique names: {val.name}")
-        shared_data[val.name] = np.array(val.get_value(), order="C", copy=True)
         shared_vars[val.name] = val
+    logp_names = [v.name for v in logp_pt.get_shared()]
+    expand_names = [v.name for v in expand_pt.get_shared()]
+    prep = dict(n_dim=n_dim, n_expanded=n_expanded, logp_pt=logp_pt, expand_pt=expand_pt,
+                initial_point_fn=ipf, shape_info=shape_info)
+    prep.update(_callbacks(n_dim, n_expanded, logp_pt.vm.jit_fn, expand_pt.vm.jit_fn,
+                           shared_vars, logp_names, expand_names))
+    return prep
+
+
+def _callbacks(n_dim: int, n_expanded: int, logp_fn: Any, expand_fn: Any, shared_vars: dict,
+               logp_names: list[str], expand_names: list[str]) -> dict[str, Any]:
+    """nutpie's shared-data record and the Python sources of its two C callbacks.
+
+    ``logp_fn``/``expand_fn`` (PyTensor's numba functions) are only called if numba
+    compiles the callbacks; code loaded from the cache never looks at them.
+    """
+    from nutpie import compile_pymc as cp
+
+    shared_data = {n: np.array(v.get_value(), order="C", copy=True) for n, v in shared_vars.items()}
     for v in shared_data.values():
         v.flags.writeable = False
     user_data = cp.make_user_data(shared_vars, shared_data)
-    logp_names = [v.name for v in logp_pt.get_shared()]
-    expand_names = [v.name for v in expand_pt.get_shared()]
-    logp_raw, logp_sig = cp._make_c_logp_func(n_dim, logp_pt.vm.jit_fn, user_data, logp_names, shared_data)
+    logp_raw, logp_sig = cp._make_c_logp_func(n_dim, logp_fn, user_data, logp_names, shared_data)
     expand_raw, expand_sig = cp._make_c_expand_func(
-        n_dim, n_expanded, expand_pt.vm.jit_fn, user_data, expand_names, shared_data
+        n_dim, n_expanded, expand_fn, user_data, expand_names, shared_data
     )
-    return dict(
-        n_dim=n_dim, n_expanded=n_expanded, logp_pt=logp_pt, expand_pt=expand_pt,
-        initial_point_fn=ipf, shape_info=shape_info, shared_data=shared_data,
-        user_data=user_data, logp_names=logp_names, expand_names=expand_names,
-        raw={"logp": (logp_raw, logp_sig), "expand": (expand_raw, expand_sig)},
-    )
+    return dict(shared_data=shared_data, user_data=user_data, logp_names=logp_names,
+                expand_names=expand_names,
+                raw={"logp": (logp_raw, logp_sig), "expand": (expand_raw, expand_sig)})
+
+
+# --------------------------------------------------------------------------- quick key
+def _quick(model: Any) -> dict[str, Any]:
+    """The quick key of a model, with what the quick path needs to rebuild it.
+
+    Lifts array constants exactly as :func:`_prepare` will (same object, same names),
+    so an entry's shared-data names mean the same arrays on both paths.
+    """
+    import pytensor
+    from nutpie import compile_pymc as cp
+    from pymc.initial_point import make_initial_point_fn
+    from pytensor.compile.sharedvalue import SharedVariable
+    from pytensor.graph.traversal import graph_inputs
+
+    from cladewise.inference.graph_print import structure_text
+
+    lift = _SharedArrays()
+    pymc_ipf = cp._wrap_with_lock(make_initial_point_fn(
+        model=model, overrides=None, default_strategy="support_point",
+        jitter_rvs=set(model.free_RVs), return_transformed=True,
+    ))
+    logp = model.logp()
+    out = {"lift": lift, "pymc_ipf": pymc_ipf, "key": None, "shared": {}, "logp": logp}
+    graphs = [lift(logp), *lift(model.unobserved_value_vars)]
+    text = structure_text(graphs)
+    if text is None:
+        return out
+    shared = {v.name: v for v in graph_inputs(graphs) if isinstance(v, SharedVariable)}
+    point = pymc_ipf(0)
+    cfg = pytensor.config
+    desc = {
+        "graphs": sha(text.encode()),
+        "free": [model.rvs_to_values[rv].name for rv in model.free_RVs],
+        "point": {n: list(np.shape(v)) for n, v in sorted(point.items())},
+        "shared": {n: [str(v.type), list(np.shape(v.get_value(borrow=True)))]
+                   for n, v in sorted(shared.items())},
+        "check_bounds": bool(model.check_bounds),
+        "config": [str(cfg.floatX), str(cfg.numba__fastmath), str(cfg.optimizer),
+                   str(cfg.optimizer_including), str(cfg.optimizer_excluding)],
+        "engine": _engine_source_hash(), "versions": _versions(),
+    }
+    try:
+        from numba.core.registry import cpu_target
+
+        desc["cpu"] = str(cpu_target.target_context.codegen().magic_tuple())
+    except Exception:  # noqa: BLE001 - without the CPU, no quick key
+        return out
+    out.update(key=sha(json.dumps(desc, sort_keys=True).encode()), shared=shared)
+    return out
+
+
+def _layout(prep: dict[str, Any]) -> dict[str, Any]:
+    """What the quick path reads from an entry to rebuild the compiled model."""
+    names, slices, shapes = prep["shape_info"]
+    return {
+        "n_dim": int(prep["n_dim"]), "n_expanded": int(prep["n_expanded"]),
+        "names": [str(n) for n in names], "slices": [[int(s.start), int(s.stop)] for s in slices],
+        "shapes": [list(map(int, sh)) for sh in shapes],
+        "logp_names": prep["logp_names"], "expand_names": prep["expand_names"],
+        "user_data": str(prep["user_data"].dtype.descr),
+    }
+
+
+def _not_compiled(*args: Any) -> Any:  # pragma: no cover - only numba would call it
+    raise RuntimeError("a cached callback was to be compiled again")
+
+
+def _from_layout(model: Any, quick: dict[str, Any], layout: dict[str, Any]) -> dict[str, Any] | None:
+    """The :func:`_prepare` result rebuilt from an entry's layout, without PyTensor compiles."""
+    from nutpie import compile_pymc as cp
+
+    wanted = list(dict.fromkeys([*layout["logp_names"], *layout["expand_names"]]))
+    if any(n not in quick["shared"] for n in wanted):
+        return None
+    n_dim = layout["n_dim"]
+    names = layout["names"]
+    slices = [slice(a, b) for a, b in layout["slices"]]
+    shapes = [tuple(sh) for sh in layout["shapes"]]
+    free = [(n, sh) for n, s, sh in zip(names, slices, shapes) if s.stop <= n_dim]
+    ipf = cp._rv_dict_to_flat_array_wrapper(
+        quick["pymc_ipf"], names=[n for n, _ in free], shapes=[sh for _, sh in free])
+    prep = dict(n_dim=n_dim, n_expanded=layout["n_expanded"], logp_pt=None, expand_pt=None,
+                initial_point_fn=ipf, shape_info=(names, slices, shapes))
+    prep.update(_callbacks(n_dim, layout["n_expanded"], _not_compiled, _not_compiled,
+                           {n: quick["shared"][n] for n in wanted},
+                           layout["logp_names"], layout["expand_names"]))
+    if str(prep["user_data"].dtype.descr) != layout["user_data"]:
+        return None
+    return prep
 
 
 def _key(prep: dict[str, Any]) -> tuple[str | None, dict[str, Any]]:
@@ -474,7 +431,7 @@ def _key(prep: dict[str, Any]) -> tuple[str | None, dict[str, Any]]:
         "fastmath": str(pytensor.config.numba__fastmath),
         "cpu": str(cpu_target.target_context.codegen().magic_tuple()),
     }
-    return _sha(json.dumps(desc, sort_keys=True).encode()), desc
+    return sha(json.dumps(desc, sort_keys=True).encode()), desc
 
 
 def _assemble(model: Any, prep: dict[str, Any], cfuncs: dict[str, Any]) -> Any:
@@ -493,10 +450,40 @@ def _assemble(model: Any, prep: dict[str, Any], cfuncs: dict[str, Any]) -> Any:
 
 def _compile(model: Any, prep: dict[str, Any], payloads: dict[str, Any] | None):
     cfuncs, caches = {}, {}
-    for name in _FUNCS:
+    for name in FUNCS:
         raw, sig = prep["raw"][name]
-        cfuncs[name], caches[name] = _make_cfunc(raw, sig, (payloads or {}).get(name))
+        cfuncs[name], caches[name] = make_cfunc(raw, sig, (payloads or {}).get(name))
     return _assemble(model, prep, cfuncs), caches
+
+
+def _quick_hit(model: Any, quick: dict[str, Any], root: Path) -> tuple[Any, Path] | None:
+    """The compiled model from the entry recorded under the quick key, if it checks out.
+
+    An entry whose code does not load, or does not reproduce PyMC's log density and
+    gradient, is deleted; the caller then takes the full path.
+    """
+    entry = find_entry(root, "quick", quick["key"])
+    if entry is None:
+        return None
+    try:
+        layout = json.loads((entry / "meta.json").read_text())["quick"]
+        payloads = read_entry(entry)
+        prep = _from_layout(model, quick, layout) if payloads is not None else None
+        if prep is not None:
+            compiled, caches = _compile(model, prep, payloads)
+            if all(c.loaded for c in caches.values()) and _agrees(compiled, model, quick["logp"]):
+                os.utime(entry / "meta.json")  # most recently used: evicted last
+                return compiled, entry
+    except Exception:  # noqa: BLE001 - any failure: the full path decides
+        pass
+    shutil.rmtree(entry, ignore_errors=True)
+    quick["dropped"] = True
+    return None
+
+
+def quick_key(model: Any) -> str | None:
+    """The quick key of a PyMC model (see the module docstring); ``None`` if it has none."""
+    return _quick(model)["key"]
 
 
 def structure_key(model: Any) -> str | None:
@@ -504,7 +491,7 @@ def structure_key(model: Any) -> str | None:
 
     ``None`` when the model cannot be cached (PyTensor cannot key one of its ops).
     """
-    return _key(_prepare(model))[0]
+    return _key(_prepare(model, _quick(model)))[0]
 
 
 def compile_cached(
@@ -521,7 +508,8 @@ def compile_cached(
         The model (``BuiltModel.model``).
     info : dict, optional
         Filled with ``status`` (``"hit"``, ``"miss"``, ``"rebuilt"`` after a bad
-        entry, or ``"uncached"``), ``key``, ``path`` and ``seconds``.
+        entry, or ``"uncached"``), ``key``, ``path``, ``seconds`` and ``quick``
+        (True when the entry was found by its quick key, without PyTensor compiles).
     on_compile : callable, optional
         Called with a sentence just before a slow numba compile starts (not on a
         cache hit), so a command line can say why it is waiting.
@@ -555,24 +543,39 @@ def compile_cached(
     try:
         from cladewise.inference import numba_ops  # noqa: F401  (numba versions of object-mode Ops)
 
-        prep = _prepare(model)
+        quick = _quick(model)
+    except Exception as err:  # noqa: BLE001 - a real model error is raised again by nutpie
+        return plain(f"cache unavailable for this model: {err!r}")
+    root = compile_cache_dir()
+    if quick["key"] is not None:
+        with _LOCK:
+            found = _quick_hit(model, quick, root)
+        if found is not None:
+            compiled, entry = found
+            info.update(status="hit", key=entry.name, path=str(entry), quick=True,
+                        seconds=time.perf_counter() - t0)
+            return compiled
+    try:
+        prep = _prepare(model, quick)
         key, desc = _key(prep)
     except Exception as err:  # noqa: BLE001 - a real model error is raised again by nutpie
         return plain(f"cache unavailable for this model: {err!r}")
     if key is None:
         return plain("PyTensor cannot key this graph")
 
-    root = compile_cache_dir()
     entry = root / key
-    info.update(key=key, path=str(entry))
+    info.update(key=key, path=str(entry), quick=False)
+    quick_meta = {"key": quick["key"], **_layout(prep)} if quick["key"] is not None else None
     with _LOCK:
-        status = "miss"
+        status = "rebuilt" if quick.get("dropped") else "miss"
         if entry.exists():
-            payloads = _read_entry(entry)
+            payloads = read_entry(entry)
             if payloads is not None:
                 compiled, caches = _compile(model, prep, payloads)
-                if all(c.loaded for c in caches.values()) and _agrees(compiled, model):
+                if all(c.loaded for c in caches.values()) and _agrees(compiled, model, quick["logp"]):
                     os.utime(entry / "meta.json")  # most recently used: evicted last
+                    if quick_meta is not None:  # found the slow way: let the next one be quick
+                        update_meta(entry, quick=quick_meta)
                     info.update(status="hit", seconds=time.perf_counter() - t0)
                     return compiled
             shutil.rmtree(entry, ignore_errors=True)
@@ -580,14 +583,14 @@ def compile_cached(
         announce("first time for this model structure" if status == "miss"
                  else "the cached copy failed its checks and is rebuilt")
         compiled, caches = _compile(model, prep, None)
-        if not _agrees(compiled, model):
+        if not _agrees(compiled, model, quick["logp"]):
             return plain("the shared-data form of the model disagreed with PyMC")
         blobs = {n: c.saved for n, c in caches.items()}
         if all(b is not None for b in blobs.values()):
             meta = {"created": time.time(), "n_dim": desc["n_dim"], "versions": desc["versions"],
-                    "names": desc["names"]}
+                    "names": desc["names"], "quick": quick_meta}
             try:
-                _write_entry(root, key, blobs, meta)
+                write_entry(root, key, blobs, meta)
             except OSError as err:  # read-only or full disk: work without the cache
                 info["reason"] = f"could not write the cache: {err}"
         else:
