@@ -25,10 +25,12 @@ import warnings
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 __all__ = [
     "DEFAULT_MAX_MB", "FUNCS", "sha", "compile_cache_dir", "compile_cache_info",
     "clear_compile_cache", "prune_compile_cache", "read_entry", "write_entry",
-    "find_entry", "update_meta", "EntryCache", "make_cfunc",
+    "find_entry", "update_meta", "EntryCache", "make_cfunc", "nutpie_callbacks",
 ]
 
 #: default bound on the cache's total size (MB); ``$CLADEWISE_CACHE_MAX_MB`` overrides
@@ -232,3 +234,34 @@ def make_cfunc(pyfunc: Any, sig: Any, payload: Any = None) -> tuple[Any, EntryCa
         warnings.simplefilter("ignore")
         cf.compile()
     return cf, cache
+
+
+def _placeholder(v: np.ndarray) -> np.ndarray:
+    out = np.zeros((1,) * v.ndim, dtype=v.dtype)
+    out.flags.writeable = v.flags.writeable
+    return out
+
+
+def nutpie_callbacks(n_dim: int, n_expanded: int, logp_fn: Any, expand_fn: Any, shared_vars: dict,
+                     logp_names: list[str], expand_names: list[str]) -> dict[str, Any]:
+    """nutpie's shared-data record and the Python sources of its two C callbacks.
+
+    ``logp_fn``/``expand_fn`` (PyTensor's numba functions) are only called if numba
+    compiles the callbacks; code loaded from the cache never looks at them.
+    """
+    from nutpie import compile_pymc as cp
+
+    shared_data = {n: np.array(v.get_value(), order="C", copy=True) for n, v in shared_vars.items()}
+    for v in shared_data.values():
+        v.flags.writeable = False
+    user_data = cp.make_user_data(shared_vars, shared_data)
+    # nutpie freezes the arrays it is given into the code as typed placeholders (the real
+    # ones come through user_data at run time); numba cannot cache code that points at an
+    # array above 1 MB (N > ~60,000 species), so it gets tiny ones of the same type.
+    typed = {n: _placeholder(v) for n, v in shared_data.items()}
+    logp_raw, logp_sig = cp._make_c_logp_func(n_dim, logp_fn, user_data, logp_names, typed)
+    expand_raw, expand_sig = cp._make_c_expand_func(n_dim, n_expanded, expand_fn, user_data,
+                                                    expand_names, typed)
+    return dict(shared_data=shared_data, user_data=user_data, logp_names=logp_names,
+                expand_names=expand_names,
+                raw={"logp": (logp_raw, logp_sig), "expand": (expand_raw, expand_sig)})

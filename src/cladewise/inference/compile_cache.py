@@ -76,6 +76,7 @@ from cladewise.inference.cache_store import (
     sha,
     update_meta,
     make_cfunc,
+    nutpie_callbacks,
     write_entry,
 )
 
@@ -294,31 +295,9 @@ def _prepare(model: Any, quick: dict[str, Any]) -> dict[str, Any]:
     expand_names = [v.name for v in expand_pt.get_shared()]
     prep = dict(n_dim=n_dim, n_expanded=n_expanded, logp_pt=logp_pt, expand_pt=expand_pt,
                 initial_point_fn=ipf, shape_info=shape_info)
-    prep.update(_callbacks(n_dim, n_expanded, logp_pt.vm.jit_fn, expand_pt.vm.jit_fn,
+    prep.update(nutpie_callbacks(n_dim, n_expanded, logp_pt.vm.jit_fn, expand_pt.vm.jit_fn,
                            shared_vars, logp_names, expand_names))
     return prep
-
-
-def _callbacks(n_dim: int, n_expanded: int, logp_fn: Any, expand_fn: Any, shared_vars: dict,
-               logp_names: list[str], expand_names: list[str]) -> dict[str, Any]:
-    """nutpie's shared-data record and the Python sources of its two C callbacks.
-
-    ``logp_fn``/``expand_fn`` (PyTensor's numba functions) are only called if numba
-    compiles the callbacks; code loaded from the cache never looks at them.
-    """
-    from nutpie import compile_pymc as cp
-
-    shared_data = {n: np.array(v.get_value(), order="C", copy=True) for n, v in shared_vars.items()}
-    for v in shared_data.values():
-        v.flags.writeable = False
-    user_data = cp.make_user_data(shared_vars, shared_data)
-    logp_raw, logp_sig = cp._make_c_logp_func(n_dim, logp_fn, user_data, logp_names, shared_data)
-    expand_raw, expand_sig = cp._make_c_expand_func(
-        n_dim, n_expanded, expand_fn, user_data, expand_names, shared_data
-    )
-    return dict(shared_data=shared_data, user_data=user_data, logp_names=logp_names,
-                expand_names=expand_names,
-                raw={"logp": (logp_raw, logp_sig), "expand": (expand_raw, expand_sig)})
 
 
 # --------------------------------------------------------------------------- quick key
@@ -403,7 +382,7 @@ def _from_layout(model: Any, quick: dict[str, Any], layout: dict[str, Any]) -> d
         quick["pymc_ipf"], names=[n for n, _ in free], shapes=[sh for _, sh in free])
     prep = dict(n_dim=n_dim, n_expanded=layout["n_expanded"], logp_pt=None, expand_pt=None,
                 initial_point_fn=ipf, shape_info=(names, slices, shapes))
-    prep.update(_callbacks(n_dim, layout["n_expanded"], _not_compiled, _not_compiled,
+    prep.update(nutpie_callbacks(n_dim, layout["n_expanded"], _not_compiled, _not_compiled,
                            {n: quick["shared"][n] for n in wanted},
                            layout["logp_names"], layout["expand_names"]))
     if str(prep["user_data"].dtype.descr) != layout["user_data"]:

@@ -516,9 +516,10 @@ def build_model(
             e_mu = pt.zeros(k)
         if exact_ou:
             ey, e_err, e_E, log_scale = ou_rescaled_inputs(node_scale, ey, observed, e_mu, err_var, E)
-        jacobian = -pt.dot(observed.sum(axis=1).astype(float), log_scale)
-
         obs_t = observed if likelihood == "dense" else pm.Data("obs_mask", observed.astype(np.int8))
+        # From the data tensor, not a numpy constant: an N-long constant would be frozen
+        # into the compiled code (no reuse across data sets; not cacheable above 1 MB).
+        jacobian = -pt.dot(pt.sum(obs_t, axis=1).astype("float64"), log_scale) if exact_ou else 0.0
         pm.Potential(
             "tree_loglik",
             _likelihood(tree, parent, lengths, ey, obs_t, R, e_E, e_err, e_mu, likelihood, regime,
