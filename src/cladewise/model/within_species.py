@@ -232,23 +232,30 @@ def within_species_logp(stats: SpecimenStats, sd, corr):
     k = stats.n.shape[1]
     const_w, use_w, const_c, use_c = _term_constants(stats, k)
     lib = np if isinstance(sd, np.ndarray) and isinstance(corr, np.ndarray) else pt
-    corr_inv = (pt.linalg.inv if lib is pt else np.linalg.inv)(corr)
-    logdet_corr = pt.log(pt.linalg.det(corr)) if lib is pt else np.linalg.slogdet(corr)[1]
-    iw = np.flatnonzero(use_w)
-    total = 0.0
-    if iw.size:
-        s = sd[iw]
-        logdet_W = 2.0 * lib.log(s).sum(axis=1) + logdet_corr
-        # tr(W^-1 A) with W^-1 = D^-1 corr^-1 D^-1
-        trace = (corr_inv[None, :, :] * stats.scatter[iw] / (s[:, :, None] * s[:, None, :])).sum(axis=(1, 2))
-        nu = stats.nu[iw]
-        total = total + (const_w[iw] - 0.5 * nu * logdet_W - 0.5 * trace).sum()
-    ic = np.nonzero(use_c)
-    if ic[0].size:
-        var = sd[ic] ** 2
-        d = stats.inc_dof[ic]
-        total = total + (const_c[ic] - 0.5 * d * lib.log(var) - 0.5 * stats.inc_ss[ic] / var).sum()
-    return total
+    if k == 2:  # closed form: LAPACK calls on a 2 x 2 matrix cost more than the algebra
+        r = corr[0, 1]
+        det = 1.0 - r * r
+        corr_inv = lib.stack([lib.stack([1.0 / det, -r / det]), lib.stack([-r / det, 1.0 / det])])
+        logdet_corr = lib.log(det)
+    else:
+        corr_inv = (pt.linalg.inv if lib is pt else np.linalg.inv)(corr)
+        logdet_corr = pt.log(pt.linalg.det(corr)) if lib is pt else np.linalg.slogdet(corr)[1]
+    # Every species in one dense expression, with zero weights where a term does not
+    # apply: picking out the species that have it (gathers, and scatters in the
+    # gradient) cost more per gradient than the arithmetic itself.
+    nu = np.where(use_w, stats.nu, 0.0)
+    scatter = np.where(use_w[:, None, None], stats.scatter, 0.0)
+    dof = np.where(use_c, stats.inc_dof, 0.0)
+    ss = np.where(use_c, stats.inc_ss, 0.0)
+    log_s = lib.log(sd)
+    inv_s = 1.0 / sd
+    # complete rows: -nu/2 log|W_i| - tr(W_i^-1 A_i)/2 with W^-1 = D^-1 corr^-1 D^-1
+    trace = (corr_inv[None, :, :] * scatter * inv_s[:, :, None] * inv_s[:, None, :]).sum()
+    wishart = (const_w.sum() - (nu[:, None] * log_s).sum() - 0.5 * nu.sum() * logdet_corr
+               - 0.5 * trace)
+    # increments: -d/2 log s^2 - SS / (2 s^2), trait by trait
+    increments = const_c.sum() - (dof * log_s).sum() - 0.5 * (ss * inv_s * inv_s).sum()
+    return wishart + increments
 
 
 def within_species_error(stats: SpecimenStats, observed: np.ndarray, traits: Sequence[str],
