@@ -258,6 +258,24 @@ def within_species_logp(stats: SpecimenStats, sd, corr):
     return wishart + increments
 
 
+#: LKJ shape of the prior on the within-species correlation matrix
+WITHIN_CORR_ETA = 2.0
+
+
+def lkj_corr(name: str, k: int, eta: float) -> Any:
+    """A ``k x k`` correlation matrix with an LKJ(eta) prior (a PyMC random variable inside).
+
+    For ``k = 2`` the LKJ density ``(1 - r^2)^(eta - 1)`` is Beta(eta, eta) on
+    ``(r + 1) / 2`` (Lewandowski, Kurowicka & Joe 2009, J. Multivariate Anal. 100:1989);
+    that form avoids the matrix factorisations of PyMC's ``LKJCorr`` at every
+    gradient, which in a small model cost as much as the tree likelihood.
+    """
+    if k == 2:
+        r = 2.0 * pm.Beta(f"{name}_half", alpha=eta, beta=eta) - 1.0
+        return pt.stack([pt.stack([pt.ones_like(r), r]), pt.stack([r, pt.ones_like(r)])])
+    return pm.LKJCorr(name, n=k, eta=eta, return_matrix=True)
+
+
 def within_species_error(stats: SpecimenStats, observed: np.ndarray, traits: Sequence[str],
                          priors: list, prior_info: Any, dims: tuple[str, str] = ("trait", "trait_")) -> Any:
     """PyMC terms of the within-species covariance; returns the ``(N, k, k)`` error of the means.
@@ -294,12 +312,11 @@ def within_species_error(stats: SpecimenStats, observed: np.ndarray, traits: Seq
     z = pm.Normal("within_z", 0.0, 1.0, dims=("species", dims[0]))
     sd = pt.exp(0.5 * (log_mean[None, :] + log_sd[None, :] * z))
     pm.Deterministic("within_sd", pt.sqrt(pt.exp(log_mean)), dims=dims[0])
-    corr = pm.LKJCorr("within_corr_lkj", n=k, eta=2.0, return_matrix=True)
-    corr = pm.Deterministic("within_corr", corr, dims=dims)
+    corr = pm.Deterministic("within_corr", lkj_corr("within_corr_lkj", k, WITHIN_CORR_ETA), dims=dims)
     pm.Potential("within_species_loglik", within_species_logp(stats, sd, corr))
     priors.append(prior_info("within-species log variance", "Normal(log median s^2, 2) mean, HalfNormal(1) spread",
                              "partial pooling across species; species with one specimen borrow strength"))
-    priors.append(prior_info("within-species correlation matrix", "LKJ(eta=2)",
+    priors.append(prior_info("within-species correlation matrix", f"LKJ(eta={WITHIN_CORR_ETA:g})",
                              "shared by all species; mildly favours small correlations"))
     F = stats.mean_error_factor(observed)
     W = sd[:, :, None] * sd[:, None, :] * corr[None, :, :]
